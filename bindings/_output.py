@@ -1,0 +1,44 @@
+"""Assemble output columns: nulls where a row has no value, statuses as a dictionary."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+
+from volsweep.kernel import status as _status
+
+STATUS_VOCABULARY = pa.array(_status.NAMES, type=pa.string())
+STATUS_TYPE = pa.dictionary(pa.int8(), pa.string())
+
+
+def float_column(values: np.ndarray, valid: np.ndarray) -> pa.Array:
+    """float64 Arrow array over ``values`` (no copy), null where ``valid`` is False."""
+    n = len(values)
+    if valid.all():
+        return pa.Array.from_buffers(pa.float64(), n, [None, pa.py_buffer(values)])
+    bitmap = np.packbits(valid, bitorder="little")
+    return pa.Array.from_buffers(pa.float64(), n, [pa.py_buffer(bitmap), pa.py_buffer(values)],
+                                 null_count=int(n - np.count_nonzero(valid)))
+
+
+def status_column(codes: np.ndarray) -> pa.DictionaryArray:
+    return pa.DictionaryArray.from_arrays(pa.array(codes, type=pa.int8()), STATUS_VOCABULARY)
+
+
+def check_no_clash(schema: pa.Schema, outputs) -> None:
+    for name in outputs:
+        if name in schema.names:
+            raise ValueError(f"input already has a column named {name!r}, which is an output; "
+                             "rename or drop it first")
+
+
+def output_schema(schema: pa.Schema, outputs) -> pa.Schema:
+    for name in outputs:
+        schema = schema.append(pa.field(name, STATUS_TYPE if name.startswith("status")
+                                        else pa.float64()))
+    return schema
+
+
+def append(batch: pa.RecordBatch, schema: pa.Schema, columns: dict) -> pa.RecordBatch:
+    arrays = list(batch.columns) + list(columns.values())
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
