@@ -164,12 +164,16 @@ class ColumnPlan:
     def expiry_years(self, batch) -> np.ndarray:
         if "expiry_years" in self.source:
             return self.floats(batch, "expiry_years")
-        exp_ns = _to_ns(batch.column(self.source["expiry"]))
+        exp_ns, valid = _to_ns(batch.column(self.source["expiry"]))
         if self.as_of_value is not None:
-            ref = np.float64(self.as_of_value)
+            ref = np.int64(self.as_of_value)
         else:
-            ref = _to_ns(batch.column(self.source["as_of"]))
-        return _readonly((exp_ns - ref) / _NS_PER_YEAR)
+            ref, ref_valid = _to_ns(batch.column(self.source["as_of"]))
+            valid = valid & ref_valid
+        # subtract in integer nanoseconds, then convert: no loss for any date range
+        years = (exp_ns - ref).astype(np.float64) / _NS_PER_YEAR
+        years[~valid] = np.nan
+        return _readonly(years)
 
     def discount(self, batch, T: np.ndarray) -> np.ndarray:
         if "discount" in self.source:
@@ -197,18 +201,16 @@ def _to_float64(arr: pa.Array) -> np.ndarray:
     return _readonly(arr.to_numpy(zero_copy_only=False))
 
 
-def _to_ns(arr: pa.Array) -> np.ndarray:
-    """Timestamps/dates as float64 nanoseconds since the epoch (NaN for nulls)."""
+def _to_ns(arr: pa.Array):
+    """Timestamps/dates as (int64 nanoseconds since the epoch, validity mask)."""
     if pa.types.is_dictionary(arr.type):
         arr = arr.dictionary_decode()
     if pa.types.is_date(arr.type):
         arr = pc.cast(arr, pa.timestamp("s"))
     tz = getattr(arr.type, "tz", None)
     arr = pc.cast(arr, pa.timestamp("ns", tz=tz)).cast(pa.int64())
-    out = pc.cast(arr, pa.float64())
-    if out.null_count:
-        out = pc.fill_null(out, np.nan)
-    return out.to_numpy(zero_copy_only=False)
+    valid = pc.is_valid(arr).to_numpy(zero_copy_only=False)
+    return pc.fill_null(arr, 0).to_numpy(zero_copy_only=False), valid
 
 
 def _scalar_ns(value) -> int:

@@ -101,8 +101,8 @@ def input_status(F, K, T, D, vol, cp):
     """Status of one row's model inputs (forward space), in priority order."""
     missing = (_is_nan(F) or _is_nan(K) or _is_nan(T) or _is_nan(D) or _is_nan(vol)
                or cp == 0)
-    nonfinite = _is_inf(F) or _is_inf(K) or _is_inf(T) or _is_inf(D) or _is_inf(vol)
-    st = S.OUT_OF_RANGE if not (D > 0.0) else S.OK
+    nonfinite = _is_inf(F) or _is_inf(K) or _is_inf(T) or _is_inf(vol)
+    st = S.OUT_OF_RANGE if not (D > 0.0 and D < INF) else S.OK
     st = S.EXPIRED if not (T > 0.0) else st
     st = S.NEGATIVE_VOL if vol < 0.0 else st
     st = S.BAD_STRIKE if not (K > 0.0) else st

@@ -13,7 +13,7 @@ BAD_UNDERLYING = 3     # forward / spot <= 0
 BAD_STRIKE = 4         # strike <= 0
 NEGATIVE_VOL = 5       # vol < 0
 EXPIRED = 6            # time to expiry <= 0
-OUT_OF_RANGE = 7       # discount factor <= 0, or a derived forward/discount not representable
+OUT_OF_RANGE = 7       # discount factor not in (0, inf), or a derived forward not representable
 # implied volatility
 BELOW_INTRINSIC = 8    # premium below the discounted intrinsic value (or negative)
 ABOVE_UPPER_BOUND = 9  # premium at or above the no-arbitrage upper bound

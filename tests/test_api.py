@@ -1,0 +1,205 @@
+"""Table-level API: input types, column mapping, statuses per row, schema errors."""
+
+import datetime as dt
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+import volsweep
+from volsweep.kernel import black
+
+# Hull, "Options, Futures, and Other Derivatives", worked example (from memory; value
+# re-derived with mpmath: 4.759422392871532): S=42, K=40, r=10%, sigma=20%, T=0.5.
+HULL_CALL = 4.759422392871532
+
+
+def _row_table(**over):
+    base = dict(spot=[42.0], strike=[40.0], expiry_years=[0.5], rate=[0.1], vol=[0.2],
+                is_call=[True])
+    base.update(over)
+    return pa.table(base)
+
+
+def _kernel_bsm(S, K, T, r, q, vol, cp):
+    n = len(S)
+    out, st = np.empty(n), np.empty(n, np.int8)
+    D = np.exp(-np.asarray(r, float) * np.asarray(T, float))
+    black.bsm_price(*(np.asarray(a, float) for a in (S, K, T, D, q, vol)),
+                    np.asarray(cp, np.int8), out, st)
+    return out, st
+
+
+def test_price_table_matches_handbook_value():
+    t = volsweep.price(_row_table())
+    assert t.column("status").to_pylist() == ["ok"]
+    assert t.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+
+
+def test_output_keeps_input_columns_in_order_and_appends_outputs():
+    t = _row_table(extra=["x"])
+    out = volsweep.price(t)
+    assert out.column_names == t.column_names + ["price", "status"]
+    assert out.select(t.column_names).equals(t)
+
+
+def test_dict_input_broadcasts_scalars_and_does_not_mutate():
+    spot = np.array([42.0, 42.0, np.nan])
+    before = spot.copy()
+    out = volsweep.price({"spot": spot, "strike": 40.0, "expiry_years": 0.5, "rate": 0.1,
+                          "vol": 0.2, "is_call": np.array([True, False, True])})
+    assert np.array_equal(spot, before, equal_nan=True)
+    assert out.num_rows == 3
+    assert out.column("status").to_pylist() == ["ok", "ok", "missing_input"]
+    assert out.column("price")[2].as_py() is None
+    # put-call parity (published identity): C - P = S - K e^{-rT}
+    c, p = out.column("price")[0].as_py(), out.column("price")[1].as_py()
+    assert c - p == pytest.approx(42.0 - 40.0 * np.exp(-0.05), rel=1e-13)
+
+
+def test_record_batch_and_capsule_stream_inputs():
+    t = _row_table()
+    batch = t.to_batches()[0]
+    assert volsweep.price(batch).column("price").equals(volsweep.price(t).column("price"))
+
+    class Stream:  # any object with the Arrow PyCapsule stream interface
+        def __arrow_c_stream__(self, requested_schema=None):
+            return t.__arrow_c_stream__(requested_schema)
+
+    assert volsweep.price(Stream()).column("price").equals(volsweep.price(t).column("price"))
+
+
+def test_multi_chunk_table_processed_chunk_by_chunk():
+    rng = np.random.default_rng(3)
+    n = 1000
+    cols = dict(spot=rng.uniform(50, 150, n), strike=rng.uniform(50, 150, n),
+                expiry_years=rng.uniform(0.01, 3, n), rate=rng.uniform(0, 0.08, n),
+                vol=rng.uniform(0.05, 1, n), is_call=rng.random(n) < 0.5)
+    whole = pa.table(cols)
+    chunked = pa.concat_tables([whole.slice(0, 137), whole.slice(137, 500), whole.slice(637)])
+    assert chunked.column("spot").num_chunks == 3
+    a = volsweep.price(whole)
+    b = volsweep.price(chunked)
+    assert b.column("price").num_chunks == 3
+    assert a.column("price").combine_chunks().equals(b.column("price").combine_chunks())
+    ref, _ = _kernel_bsm(cols["spot"], cols["strike"], cols["expiry_years"], cols["rate"],
+                         np.zeros(n), cols["vol"], np.where(cols["is_call"], 1, -1))
+    assert np.array_equal(a.column("price").to_numpy(), ref)
+
+
+def test_black76_with_discount_and_remapped_columns():
+    # Haug, "The Complete Guide to Option Pricing Formulas", Black-76 example (from memory;
+    # re-derived with mpmath: 1.7010507252362...): F=K=19, T=0.75, r=10%, sigma=28%.
+    t = pa.table({"F": [19.0], "K": [19.0], "tau": [0.75], "discount": [np.exp(-0.075)],
+                  "sigma": [0.28], "cp": ["C"]})
+    out = volsweep.price(t, model="black76", columns={"forward": "F", "strike": "K",
+                                                      "expiry_years": "tau", "vol": "sigma",
+                                                      "is_call": "cp"})
+    assert out.column("price")[0].as_py() == pytest.approx(1.7010507252362, rel=1e-12)
+
+
+def test_call_put_strings_any_case_and_unknown_word():
+    t = _row_table(spot=[42.0] * 6, strike=[40.0] * 6, expiry_years=[0.5] * 6, rate=[0.1] * 6,
+                   vol=[0.2] * 6, is_call=["call", "PUT", "c", "p", "Call ", "fwd"])
+    out = volsweep.price(t)
+    st = out.column("status").to_pylist()
+    assert st == ["ok"] * 5 + ["missing_input"]
+    p = out.column("price").to_pylist()
+    assert p[0] == p[2] == p[4] and p[1] == p[3] and p[0] != p[1]
+
+
+def test_integer_and_float32_columns_are_upcast():
+    t = pa.table({"spot": pa.array([42], pa.int32()), "strike": pa.array([40], pa.int64()),
+                  "expiry_years": pa.array([0.5], pa.float32()), "rate": [0.1],
+                  "vol": pa.array([0.2], pa.float32()), "is_call": [True]})
+    out = volsweep.price(t)
+    # float32(0.2) is not 0.2: compare with the kernel on the upcast values
+    ref, _ = _kernel_bsm([42.0], [40.0], [0.5], [0.1], [0.0],
+                         [float(np.float32(0.2))], [1])
+    assert out.column("price")[0].as_py() == ref[0]
+
+
+def test_expiry_timestamps_with_as_of_act365f():
+    as_of = dt.datetime(2026, 3, 2, 16, 0)
+    expiry = as_of + dt.timedelta(days=73)  # 73/365 = 0.2 years exactly (ACT/365F)
+    base = dict(spot=[42.0], strike=[40.0], rate=[0.1], vol=[0.2], is_call=[True])
+    t = pa.table({**base, "expiry": pa.array([expiry], pa.timestamp("us"))})
+    a = volsweep.price(t, as_of=as_of)
+    b = volsweep.price(pa.table({**base, "expiry_years": [0.2]}))
+    assert a.column("price")[0].as_py() == pytest.approx(b.column("price")[0].as_py(), rel=1e-15)
+    t2 = t.append_column("as_of", pa.array([as_of], pa.timestamp("s")))
+    c = volsweep.price(t2)
+    assert c.column("price").equals(a.column("price"))
+    # an expired contract (expiry before as_of) is a status, not an error
+    late = volsweep.price(t, as_of=expiry + dt.timedelta(days=1))
+    assert late.column("status").to_pylist() == ["expired"]
+
+
+@pytest.mark.parametrize("over, status", [
+    (dict(strike=[-1.0]), "bad_strike"),
+    (dict(strike=[0.0]), "bad_strike"),
+    (dict(spot=[0.0]), "bad_underlying"),
+    (dict(vol=[-0.1]), "negative_vol"),
+    (dict(expiry_years=[0.0]), "expired"),
+    (dict(expiry_years=[-1.0]), "expired"),
+    (dict(spot=[np.inf]), "non_finite_input"),
+    (dict(rate=[np.nan]), "missing_input"),
+    (dict(spot=pa.array([None], pa.float64())), "missing_input"),
+    (dict(is_call=pa.array([None], pa.bool_())), "missing_input"),
+    (dict(div_yield=[np.nan]), "missing_input"),
+    (dict(rate=[-2000.0]), "out_of_range"),  # e^{-rT} overflows
+])
+def test_bad_row_gets_its_reason_and_a_null_price(over, status):
+    good = dict(spot=42.0, strike=40.0, expiry_years=0.5, rate=0.1, vol=0.2, is_call=True,
+                div_yield=0.0)
+    cols = {}
+    for name, value in good.items():
+        bad = over.get(name)
+        bad = bad[0].as_py() if isinstance(bad, pa.Array) else (value if bad is None else bad[0])
+        cols[name] = pa.array([value, bad], pa.bool_() if name == "is_call" else pa.float64())
+    out = volsweep.price(pa.table(cols))
+    assert out.column("status").to_pylist() == ["ok", status]
+    assert out.column("price")[1].as_py() is None
+    assert out.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+
+
+def test_zero_vol_prices_discounted_intrinsic():
+    # common practice: with no volatility the option is worth its discounted forward intrinsic
+    out = volsweep.price(_row_table(vol=[0.0]))
+    fwd = 42.0 * np.exp(0.05)
+    assert out.column("status").to_pylist() == ["ok"]
+    assert out.column("price")[0].as_py() == pytest.approx(np.exp(-0.05) * (fwd - 40.0), rel=1e-14)
+
+
+def test_status_is_dictionary_encoded():
+    out = volsweep.price(_row_table())
+    assert pa.types.is_dictionary(out.schema.field("status").type)
+
+
+def test_empty_input_gives_empty_output_with_schema():
+    t = _row_table().slice(0, 0)
+    out = volsweep.price(t)
+    assert out.num_rows == 0
+    assert out.column_names[-2:] == ["price", "status"]
+
+
+@pytest.mark.parametrize("table, kwargs, exc, word", [
+    (_row_table().drop_columns(["strike"]), {}, ValueError, "strike"),
+    (_row_table().drop_columns(["rate"]), {}, ValueError, "rate"),
+    (_row_table().append_column("discount", pa.array([0.9])), {}, ValueError, "discount"),
+    (_row_table(strike=["40"]), {}, TypeError, "strike"),
+    (_row_table(is_call=[1]), {}, TypeError, "is_call"),
+    (_row_table(), {"model": "heston"}, ValueError, "heston"),
+    (_row_table(), {"columns": {"strike": "K"}}, ValueError, "K"),
+    (_row_table(), {"columns": {"strik": "K"}}, ValueError, "strik"),
+    (_row_table(), {"model": "black76"}, ValueError, "forward"),
+    (_row_table(price=[1.0]), {}, ValueError, "price"),
+])
+def test_schema_problems_raise_naming_the_column(table, kwargs, exc, word):
+    with pytest.raises(exc, match=word):
+        volsweep.price(table, **kwargs)
+
+
+def test_unsupported_input_type_raises_type_error():
+    with pytest.raises(TypeError):
+        volsweep.price([1, 2, 3])
