@@ -101,8 +101,11 @@ class ColumnPlan:
         require(und, f"model {model!r}")
         require("strike")
         require("is_call")
-        exclusive("expiry_years", "expiry")
-        if present("expiry"):
+        # Time to expiry: 'expiry_years' when present; 'expiry' (+ as_of) when it is the
+        # only one, or when the caller maps 'expiry' explicitly.  Mapping both conflicts.
+        if "expiry" in columns and "expiry_years" in columns:
+            exclusive("expiry_years", "expiry")
+        if present("expiry") and ("expiry" in columns or not present("expiry_years")):
             require("expiry")
             if isinstance(as_of, str) and as_of in names:
                 plan.source["as_of"] = as_of

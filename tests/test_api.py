@@ -203,3 +203,16 @@ def test_schema_problems_raise_naming_the_column(table, kwargs, exc, word):
 def test_unsupported_input_type_raises_type_error():
     with pytest.raises(TypeError):
         volsweep.price([1, 2, 3])
+
+
+def test_expiry_years_preferred_over_timestamps_unless_expiry_is_mapped():
+    as_of = dt.datetime(2026, 3, 2)
+    t = pa.table(dict(spot=[42.0], strike=[40.0], rate=[0.1], vol=[0.2], is_call=[True],
+                      expiry_years=[0.5],
+                      expiry=pa.array([as_of + dt.timedelta(days=73)], pa.timestamp("s"))))
+    half = volsweep.price(t, as_of=as_of).column("price")[0].as_py()
+    assert half == pytest.approx(HULL_CALL, rel=1e-14)
+    mapped = volsweep.price(t, as_of=as_of, columns={"expiry": "expiry"})
+    assert mapped.column("price")[0].as_py() < half  # 0.2 years, not 0.5
+    with pytest.raises(ValueError, match="expiry"):
+        volsweep.price(t, as_of=as_of, columns={"expiry": "expiry", "expiry_years": "expiry_years"})
