@@ -12,6 +12,7 @@ import numpy as np
 import pyarrow as pa
 
 from volsweep.kernel import black as _black
+from volsweep.kernel import status as _status
 
 from ._columns import ColumnPlan
 from ._input import as_batches
@@ -19,9 +20,14 @@ from ._output import append, check_no_clash, float_column, output_schema, status
 
 
 def _run(data, plan_kwargs, outputs, compute) -> pa.Table:
-    """Shared driver: plan the columns once, then ``compute(plan, batch)`` per batch."""
+    """Shared driver: plan the columns once, then ``compute(plan, batch)`` per batch.
+
+    ``outputs`` is the tuple of output names, or a function of the plan giving it.
+    """
     schema, batches = as_batches(data)
     plan = ColumnPlan.build(schema, **plan_kwargs)
+    if callable(outputs):
+        outputs = outputs(plan)
     check_no_clash(schema, outputs)
     out_schema = output_schema(schema, outputs)
     out = [append(b, out_schema, compute(plan, b)) for b in batches]
@@ -57,3 +63,85 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
 
     return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
                            as_of=as_of), ("price", "status"), compute)
+
+
+_INPUT_PROBLEM = np.int8(_status.OUT_OF_RANGE)  # codes 1..7 are input problems
+
+
+def _iv_kernel(plan, premium, und, K, T, D, q, cp):
+    from volsweep.kernel import implied as _implied  # TODO: top-level once the kernel lands
+
+    n = len(premium)
+    iv = np.empty(n)
+    st = np.empty(n, np.int8)
+    if plan.model == "bsm":
+        _implied.bsm_iv(premium, und, K, T, D, q, cp, iv, st)
+    else:
+        _implied.black76_iv(premium, und, K, T, D, cp, iv, st)
+    return iv, st
+
+
+def _quote_problems(bid, ask, st_bid, st_ask, st_mid, ivs):
+    """Overlay the quote's own problems on the per-side statuses (in place).
+
+    Input problems (codes 1..7) keep priority.  A crossed quote (bid > ask) has no vol on
+    either side nor at the mid; a zero bid has no bid vol and no meaningful mid.
+    """
+    with np.errstate(invalid="ignore"):
+        crossed = bid > ask
+        zero_bid = (bid <= 0.0) & ~crossed
+    for st in (st_bid, st_ask, st_mid):
+        quote_level = (st == 0) | (st > _INPUT_PROBLEM)
+        st[crossed & quote_level] = _status.CROSSED_QUOTE
+    for st in (st_bid, st_mid):
+        quote_level = (st == 0) | (st > _INPUT_PROBLEM)
+        st[zero_bid & quote_level] = _status.ZERO_BID
+    for iv, st in zip(ivs, (st_bid, st_ask, st_mid)):
+        iv[st != 0] = np.nan
+
+
+_IV_QUOTE_OUTPUTS = ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty",
+                     "status_bid", "status_ask", "status")
+
+
+def _iv_columns(plan, batch, und, K, T, D, q, cp):
+    """Implied-vol outputs of one batch, plus the mid vol and its status for the Greeks."""
+    if plan.quote == "premium":
+        iv, st = _iv_kernel(plan, plan.floats(batch, "premium"), und, K, T, D, q, cp)
+        return {"iv": float_column(iv, st == 0), "status": status_column(st)}, iv, st
+    bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
+    with np.errstate(invalid="ignore"):
+        mid = 0.5 * (bid + ask)
+        half_spread = 0.5 * (ask - bid)
+    iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
+    iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
+    iv_m, st_m = _iv_kernel(plan, mid, und, K, T, D, q, cp)
+    _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
+    vega = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)[0]
+    with np.errstate(all="ignore"):
+        unc = half_spread / vega
+    ok = st_m == 0
+    cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
+            "iv": float_column(iv_m, ok), "iv_spread_uncertainty": float_column(unc, ok),
+            "status_bid": status_column(st_b), "status_ask": status_column(st_a),
+            "status": status_column(st_m)}
+    return cols, iv_m, st_m
+
+
+def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
+    """Implied volatilities from market prices.
+
+    From a ``premium`` column: adds ``iv`` and ``status``.  From ``bid`` and ``ask``: adds
+    ``iv_bid``, ``iv_ask`` and ``iv`` (from the mid), each with its own status
+    (``status_bid``, ``status_ask``, and ``status`` for the mid), and
+    ``iv_spread_uncertainty``, the half-spread divided by the vega at the mid vol.
+    """
+
+    def compute(plan, batch):
+        und, K, T, D, q, cp = _forward_inputs(plan, batch)
+        return _iv_columns(plan, batch, und, K, T, D, q, cp)[0]
+
+    return _run(data, dict(model=model, columns=columns, need_vol=False, need_quote=True,
+                           as_of=as_of),
+                lambda plan: ("iv", "status") if plan.quote == "premium" else _IV_QUOTE_OUTPUTS,
+                compute)
