@@ -19,10 +19,17 @@ Why these flags:
   Where an exact product error is needed we call a real fused multiply-add (``_intrinsics``)
   because ``contract`` does not guarantee fusion.
 * ``cache=True``: compiled code is kept in ``__pycache__`` next to the source, so a new
-  process (a Dask worker, the CLI) loads it instead of recompiling.
+  process (a Dask worker, the CLI) loads it instead of recompiling.  The cache entries are
+  stamped with a hash of every kernel source file (``_cache.py``), because the loops
+  inline code from other modules and numba alone would only notice edits to the loop's
+  own file.
 """
 
 import numba
+
+from . import _cache
+
+_cache.install()
 
 FASTMATH = frozenset({"contract"})
 

@@ -1,0 +1,55 @@
+"""numba on-disk cache keyed on the whole kernel package, not one file.
+
+numba's cache stamps each compiled function with its own source file only.  Our array
+loops inline scalar functions from other modules (``special.py``, ``_intrinsics.py``,
+``black.py``), so an edit there would leave stale machine code in the cache, silently.
+These locators stamp every kernel function with a hash of all ``kernel/*.py`` sources;
+any kernel edit invalidates every cached kernel.  Registered first, they claim only
+functions defined in this folder and leave everything else to numba's own locators.
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+import os
+
+from numba.core import caching
+
+_KERNEL_DIR = os.path.dirname(os.path.abspath(__file__))
+
+
+def kernel_source_hash() -> bytes:
+    """sha256 over the names, sizes and mtimes-independent contents of kernel/*.py."""
+    h = hashlib.sha256()
+    for path in sorted(glob.glob(os.path.join(_KERNEL_DIR, "*.py"))):
+        h.update(os.path.basename(path).encode())
+        with open(path, "rb") as f:
+            h.update(hashlib.sha256(f.read()).digest())
+    return h.digest()
+
+
+class _PackageStamp:
+    def get_source_stamp(self):
+        return kernel_source_hash()
+
+    @classmethod
+    def from_function(cls, py_func, py_file):
+        if os.path.dirname(os.path.abspath(py_file)) != _KERNEL_DIR:
+            return None
+        return super().from_function(py_func, py_file)
+
+
+class KernelInTreeLocator(_PackageStamp, caching.InTreeCacheLocator):
+    """Cache in kernel/__pycache__ (a source checkout or a writable install)."""
+
+
+class KernelUserWideLocator(_PackageStamp, caching.UserWideCacheLocator):
+    """Cache in the user's cache folder when kernel/ is not writable."""
+
+
+def install() -> None:
+    classes = caching.CacheImpl._locator_classes
+    for cls in (KernelUserWideLocator, KernelInTreeLocator):
+        if cls not in classes:
+            classes.insert(0, cls)
