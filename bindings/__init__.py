@@ -3,7 +3,8 @@
 Outputs are model values, not investment advice.
 """
 
-from .api import price
+from .api import greeks, implied_vol, price
+from volsweep.kernel.greeks import GREEK_NAMES
 
-__all__ = ["price"]
+__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price"]
 __version__ = "0.1.0"

@@ -12,9 +12,11 @@ import numpy as np
 import pyarrow as pa
 
 from volsweep.kernel import black as _black
+from volsweep.kernel import greeks as _greeks
+from volsweep.kernel import implied as _implied
 from volsweep.kernel import status as _status
 
-from ._columns import ColumnPlan
+from ._columns import ColumnPlan, check_model
 from ._input import as_batches
 from ._output import append, check_no_clash, float_column, output_schema, status_column
 
@@ -69,8 +71,6 @@ _INPUT_PROBLEM = np.int8(_status.OUT_OF_RANGE)  # codes 1..7 are input problems
 
 
 def _iv_kernel(plan, premium, und, K, T, D, q, cp):
-    from volsweep.kernel import implied as _implied  # TODO: top-level once the kernel lands
-
     n = len(premium)
     iv = np.empty(n)
     st = np.empty(n, np.int8)
@@ -117,7 +117,7 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp):
     iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
     iv_m, st_m = _iv_kernel(plan, mid, und, K, T, D, q, cp)
     _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
-    vega = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)[0]
+    (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
     with np.errstate(all="ignore"):
         unc = half_spread / vega
     ok = st_m == 0
@@ -145,3 +145,53 @@ def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=
                            as_of=as_of),
                 lambda plan: ("iv", "status") if plan.quote == "premium" else _IV_QUOTE_OUTPUTS,
                 compute)
+
+
+def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
+    """Greeks named in ``which`` (already validated) -> (out[n_req, n], status)."""
+    mask = _greeks.greek_mask(which, plan.model)
+    n = len(K)
+    out = np.empty((bin(mask).count("1"), n))
+    st = np.empty(n, np.int8)
+    if plan.model == "bsm":
+        _greeks.bsm_greeks(und, K, T, D, q, vol, cp, mask, out, st)
+    else:
+        _greeks.black76_greeks(und, K, T, D, vol, cp, mask, out, st)
+    if units == "desk":
+        out *= _greeks.desk_factors(mask)[:, None]
+    return out, st
+
+
+def _greek_list(which, model) -> tuple:
+    """Validated Greek names, in output order (raises on an unknown name)."""
+    return _greeks.greek_names(_greeks.greek_mask(which, model))
+
+
+def _check_units(units):
+    if units not in ("raw", "desk"):
+        raise ValueError(f"unknown units {units!r}; expected 'raw' or 'desk'")
+
+
+def greeks(data, model: str = "bsm", which=None, units: str = "raw",
+           columns: dict | None = None, *, as_of=None) -> pa.Table:
+    """Analytic Greeks at the volatility in the ``vol`` column.
+
+    ``which``: a Greek name or a list of them (None: all the model has; see
+    ``GREEK_NAMES``).  ``units="raw"``: per 1.00 of vol, rate and yield, theta per year;
+    ``units="desk"``: per vol point, per 1%, per calendar day.  Adds one column per Greek and
+    ``status``.  Derivatives are against the spot for ``bsm`` and the forward for ``black76``.
+    """
+    _check_units(units)
+    names = _greek_list(which, check_model(model))
+
+    def compute(plan, batch):
+        und, K, T, D, q, cp = _forward_inputs(plan, batch)
+        out, st = _greek_values(plan, names, und, K, T, D, q, plan.floats(batch, "vol"), cp,
+                                units)
+        ok = st == 0
+        cols = {name: float_column(out[j], ok) for j, name in enumerate(names)}
+        cols["status"] = status_column(st)
+        return cols
+
+    return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
+                           as_of=as_of), names + ("status",), compute)
