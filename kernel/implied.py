@@ -248,8 +248,9 @@ def implied_total_vol(x, r, lr, c):
     lower = r <= rc
     lt = lr if lower else log(c)
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
-    for _ in range(HOUSEHOLDER_STEPS):
-        s = _householder(s, x, lt, not lower)
+    # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
+    s = _householder(s, x, lt, not lower)
+    s = _householder(s, x, lt, not lower)
     tiny = (not lower) and r < _R_TINY
     return _SQRT2PI * (r - 0.5 * x) if tiny else s
 

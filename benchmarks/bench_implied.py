@@ -1,0 +1,214 @@
+"""Implied-vol throughput and accuracy: our kernel vs its own price kernel, a vectorised
+numpy Newton and a per-contract scipy root-finder, on the same contracts in one run.
+
+    .venv/bin/python benchmarks/bench_implied.py [--rows 2000000] [--repeat 5]
+
+prints a table (contracts/s, ratio to our iv kernel, accuracy).  Under pytest the
+``test_*`` functions are pytest-benchmark benchmarks (skipped unless ``--benchmark-only``
+or ``--benchmark-enable`` is given; the default options skip them).
+
+Accuracy is measured as relative error against the vol the premium was priced from, in
+units of the tolerance of tests/test_implied.py (8 ulp max(1, (1 + e_F + e_K) / e_s)) plus
+the price kernel's own bound carried to the vol; "within" is the share of rows <= 1.
+"""
+
+import argparse
+import math
+import time
+
+import numpy as np
+from scipy.optimize import brentq
+from scipy.special import ndtr
+
+from volsweep.kernel import black, implied
+
+EPS = 2.0 ** -52
+SQRT2PI = math.sqrt(2.0 * math.pi)
+
+
+def make_contracts(n, seed=11):
+    """Seeded synthetic Black-76 contracts, premiums from our price kernel (valid rows)."""
+    rng = np.random.default_rng(seed)
+    F = np.exp(rng.uniform(np.log(5.0), np.log(500.0), n))
+    T = np.exp(rng.uniform(np.log(2.0 / 365.0), np.log(3.0), n))
+    vol = np.exp(rng.uniform(np.log(0.05), np.log(1.2), n))
+    # strikes spread by +-3.5 standard deviations of the forward
+    x = rng.uniform(-3.5, 3.5, n) * vol * np.sqrt(T)
+    K = F * np.exp(-x)
+    D = np.exp(-0.03 * T)
+    cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
+    price = np.empty(n)
+    st = np.empty(n, dtype=np.int8)
+    black.black76_price(F, K, T, D, vol, cp, price, st)
+    intrinsic = D * np.maximum(np.where(cp > 0, F - K, K - F), 0.0)
+    good = (st == 0) & (price > intrinsic) & (price - intrinsic > 1e-300 * F)
+    return {k: np.ascontiguousarray(v[good]) for k, v in
+            dict(F=F, K=K, T=T, D=D, vol=vol, cp=cp, premium=price).items()}
+
+
+def tolerance(c):
+    """Per-row tolerance (relative) as in tests/test_implied.py, plus the price error."""
+    s = c["vol"] * np.sqrt(c["T"])
+    d1 = np.log(c["F"] / c["K"]) / s + s / 2
+    th = c["cp"].astype(np.float64)
+    V = c["premium"]
+    eF = c["D"] * c["F"] * ndtr(th * d1) / V
+    eK = c["D"] * c["K"] * ndtr(th * (d1 - s)) / V
+    es = s * c["D"] * c["F"] * np.exp(-0.5 * d1 * d1) / SQRT2PI / V
+    return 8 * EPS * (np.maximum(1.0, (1 + eF + eK) / es) + np.maximum(1.0, eF + eK + es) / es)
+
+
+# ---------------------------------------------------------------- the implementations
+
+def ours_iv(c, out=None):
+    iv = np.empty_like(c["F"]) if out is None else out
+    st = np.empty(c["F"].shape, dtype=np.int8)
+    implied.black76_iv(c["premium"], c["F"], c["K"], c["T"], c["D"], c["cp"], iv, st)
+    return iv
+
+
+def ours_price(c):
+    p = np.empty_like(c["F"])
+    st = np.empty(c["F"].shape, dtype=np.int8)
+    black.black76_price(c["F"], c["K"], c["T"], c["D"], c["vol"], c["cp"], p, st)
+    return p
+
+
+def numpy_newton(c, steps=8):
+    """Vectorised Newton on the price from the Brenner-Subrahmanyam start
+    sigma0 = sqrt(2 pi / T) C / (D F), with scipy.special.ndtr: the straightforward way."""
+    F, K, T, D, th, P = c["F"], c["K"], c["T"], c["D"], c["cp"].astype(np.float64), c["premium"]
+    sqT = np.sqrt(T)
+    x = np.log(F / K)
+    sig = np.sqrt(2 * np.pi / T) * P / (D * F)
+    for _ in range(steps):
+        s = np.maximum(sig, 1e-8) * sqT
+        d1 = x / s + s / 2
+        d2 = d1 - s
+        price = D * th * (F * ndtr(th * d1) - K * ndtr(th * d2))
+        vega = D * F * np.exp(-0.5 * d1 * d1) / SQRT2PI * sqT
+        sig = sig - (price - P) / vega
+    return sig
+
+
+def _price_one(sig, F, K, T, D, th):
+    s = sig * math.sqrt(T)
+    d1 = math.log(F / K) / s + s / 2
+    d2 = d1 - s
+    n = lambda z: 0.5 * math.erfc(-z / math.sqrt(2.0))  # noqa: E731
+    return D * th * (F * n(th * d1) - K * n(th * d2))
+
+
+def scipy_brentq(c, idx):
+    """scipy.optimize.brentq per contract on [1e-6, 20] (xtol 1e-15)."""
+    out = np.empty(idx.size)
+    for j, i in enumerate(idx):
+        args = (c["F"][i], c["K"][i], c["T"][i], c["D"][i], float(c["cp"][i]))
+        P = c["premium"][i]
+        try:
+            out[j] = brentq(lambda v: _price_one(v, *args) - P, 1e-6, 20.0, xtol=1e-15,
+                            rtol=4 * EPS, maxiter=200)
+        except ValueError:
+            out[j] = np.nan
+    return out
+
+
+# ---------------------------------------------------------------- measurement
+
+def _median_time(fn, repeat):
+    ts = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        ts.append(time.perf_counter() - t0)
+    return float(np.median(ts))
+
+
+def _accuracy(got, c, tol, idx=None):
+    vol = c["vol"] if idx is None else c["vol"][idx]
+    tol = tol if idx is None else tol[idx]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = np.abs(got / vol - 1.0)
+        ratio = np.where(np.isfinite(rel), rel / tol, np.inf)
+    return float(np.nanmax(np.where(np.isfinite(rel), rel, np.inf))), float(ratio.max()), \
+        float((ratio <= 1.0).mean())
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=2_000_000)
+    ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--brentq-rows", type=int, default=2000)
+    a = ap.parse_args(argv)
+
+    c = make_contracts(a.rows)
+    n = c["F"].size
+    small = {k: v[:1000] for k, v in c.items()}
+    ours_iv(small), ours_price(small)                       # JIT warm-up
+    tol = tolerance(c)
+    idx = np.random.default_rng(5).choice(n, size=min(a.brentq_rows, n), replace=False)
+
+    t_iv = _median_time(lambda: ours_iv(c), a.repeat)
+    t_px = _median_time(lambda: ours_price(c), a.repeat)
+    t_np = _median_time(lambda: numpy_newton(c), max(1, a.repeat // 2))
+    t_bq = _median_time(lambda: scipy_brentq(c, idx), 1)
+
+    acc_iv = _accuracy(ours_iv(c), c, tol)
+    acc_np = _accuracy(numpy_newton(c), c, tol)
+    acc_bq = _accuracy(scipy_brentq(c, idx), c, tol, idx)
+    acc_iv_sub = _accuracy(ours_iv(c)[idx], c, tol, idx)
+
+    import numba
+    rate = lambda t, m: m / t  # noqa: E731
+    r_iv = rate(t_iv, n)
+    rows = [
+        ("volsweep black76_iv", r_iv, acc_iv, n),
+        ("volsweep black76_price", rate(t_px, n), None, n),
+        ("numpy Newton x8 (B-S start)", rate(t_np, n), acc_np, n),
+        ("scipy brentq per contract", rate(t_bq, idx.size), acc_bq, idx.size),
+    ]
+    print(f"{n} contracts, numba threads = {numba.get_num_threads()}, "
+          f"median of {a.repeat} runs (numpy {max(1, a.repeat // 2)}, brentq 1)")
+    print(f"{'implementation':32s} {'rows':>9s} {'contracts/s':>12s} {'iv/this':>8s} "
+          f"{'max rel err':>11s} {'max err/tol':>11s} {'within tol':>10s}")
+    for name, r, acc, m in rows:
+        extra = ("" if acc is None else f" {acc[0]:11.3g} {acc[1]:11.3g} {acc[2]:10.2%}")
+        print(f"{name:32s} {m:9d} {r:12.4g} {r_iv / r:8.3g}{extra}")
+    print(f"iv throughput / price throughput = {r_iv / rows[1][1]:.3f} (target >= 1/3); "
+          f"ours on the brentq rows: max err/tol {acc_iv_sub[1]:.3g}")
+    return rows
+
+
+# ---------------------------------------------------------------- pytest-benchmark
+
+_BENCH_ROWS = 200_000
+
+
+def _bench_data():
+    if not hasattr(_bench_data, "c"):
+        _bench_data.c = make_contracts(_BENCH_ROWS)
+        ours_iv(_bench_data.c), ours_price(_bench_data.c)
+    return _bench_data.c
+
+
+def test_bench_iv(benchmark):
+    c = _bench_data()
+    out = np.empty_like(c["F"])
+    benchmark(ours_iv, c, out)
+
+
+def test_bench_price(benchmark):
+    benchmark(ours_price, _bench_data())
+
+
+def test_bench_numpy_newton(benchmark):
+    benchmark(numpy_newton, _bench_data())
+
+
+def test_bench_scipy_brentq(benchmark):
+    c = _bench_data()
+    benchmark.pedantic(scipy_brentq, args=(c, np.arange(200)), rounds=3)
+
+
+if __name__ == "__main__":
+    main()
