@@ -3,8 +3,8 @@
 Outputs are model values, not investment advice.
 """
 
-from .api import greeks, implied_vol, price
+from .api import greeks, implied_vol, price, sweep
 from volsweep.kernel.greeks import GREEK_NAMES
 
-__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price"]
+__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price", "sweep"]
 __version__ = "0.1.0"

@@ -15,6 +15,7 @@ from volsweep.kernel import black as _black
 from volsweep.kernel import greeks as _greeks
 from volsweep.kernel import implied as _implied
 from volsweep.kernel import status as _status
+from volsweep.kernel import sweep as _sweep
 
 from ._columns import ColumnPlan, check_model
 from ._input import as_batches
@@ -100,32 +101,59 @@ def _quote_problems(bid, ask, st_bid, st_ask, st_mid, ivs):
         iv[st != 0] = np.nan
 
 
-_IV_QUOTE_OUTPUTS = ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty",
-                     "status_bid", "status_ask", "status")
+def _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask):
+    n = len(premium)
+    iv = np.empty(n)
+    out = np.empty((bin(mask).count("1"), n))
+    st = np.empty(n, np.int8)
+    if plan.model == "bsm":
+        _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
+    else:
+        _sweep.black76_sweep(premium, und, K, T, D, cp, mask, iv, out, st)
+    return iv, out, st
 
 
-def _iv_columns(plan, batch, und, K, T, D, q, cp):
-    """Implied-vol outputs of one batch, plus the mid vol and its status for the Greeks."""
+def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
+    """Implied-vol outputs of one batch, with the Greeks in ``names`` at the (mid) vol.
+
+    Returns (columns, Greeks array in raw units or None, mid status).
+    """
+    mask = _greeks.greek_mask(names, plan.model) if names else 0
+
+    def solve(premium):
+        if not names:
+            iv, st = _iv_kernel(plan, premium, und, K, T, D, q, cp)
+            return iv, None, st
+        return _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask)
+
     if plan.quote == "premium":
-        iv, st = _iv_kernel(plan, plan.floats(batch, "premium"), und, K, T, D, q, cp)
-        return {"iv": float_column(iv, st == 0), "status": status_column(st)}, iv, st
+        iv, g, st = solve(plan.floats(batch, "premium"))
+        return {"iv": float_column(iv, st == 0)}, g, st
     bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
     with np.errstate(invalid="ignore"):
         mid = 0.5 * (bid + ask)
         half_spread = 0.5 * (ask - bid)
     iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
     iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
-    iv_m, st_m = _iv_kernel(plan, mid, und, K, T, D, q, cp)
+    iv_m, g, st_m = solve(mid)
     _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
-    (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
+    if "vega" in names:
+        vega = g[names.index("vega")]
+    else:
+        (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
     with np.errstate(all="ignore"):
         unc = half_spread / vega
     ok = st_m == 0
     cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
             "iv": float_column(iv_m, ok), "iv_spread_uncertainty": float_column(unc, ok),
-            "status_bid": status_column(st_b), "status_ask": status_column(st_a),
-            "status": status_column(st_m)}
-    return cols, iv_m, st_m
+            "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
+    return cols, g, st_m
+
+
+def _iv_outputs(plan):
+    if plan.quote == "premium":
+        return ("iv",)
+    return ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty", "status_bid", "status_ask")
 
 
 def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
@@ -139,12 +167,12 @@ def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=
 
     def compute(plan, batch):
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        return _iv_columns(plan, batch, und, K, T, D, q, cp)[0]
+        cols, _, st = _iv_columns(plan, batch, und, K, T, D, q, cp)
+        cols["status"] = status_column(st)
+        return cols
 
     return _run(data, dict(model=model, columns=columns, need_vol=False, need_quote=True,
-                           as_of=as_of),
-                lambda plan: ("iv", "status") if plan.quote == "premium" else _IV_QUOTE_OUTPUTS,
-                compute)
+                           as_of=as_of), lambda plan: _iv_outputs(plan) + ("status",), compute)
 
 
 def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
@@ -195,3 +223,30 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
 
     return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
                            as_of=as_of), names + ("status",), compute)
+
+
+def sweep(data, model: str = "bsm", which=None, units: str = "raw",
+          columns: dict | None = None, *, as_of=None) -> pa.Table:
+    """Implied vol from the quote, then the Greeks at that vol, in one kernel pass.
+
+    Takes ``premium`` (or ``bid`` and ``ask``: the Greeks are at the mid vol) and adds the
+    implied-vol outputs of ``implied_vol`` followed by the Greeks of ``greeks``.  Rows
+    without an implied vol get null Greeks and the implied-vol status.
+    """
+    _check_units(units)
+    names = _greek_list(which, check_model(model))
+
+    def compute(plan, batch):
+        und, K, T, D, q, cp = _forward_inputs(plan, batch)
+        cols, g, st = _iv_columns(plan, batch, und, K, T, D, q, cp, names)
+        if units == "desk":
+            g *= _greeks.desk_factors(_greeks.greek_mask(names, plan.model))[:, None]
+        ok = st == 0
+        for j, name in enumerate(names):
+            cols[name] = float_column(g[j], ok)
+        cols["status"] = status_column(st)
+        return cols
+
+    return _run(data, dict(model=model, columns=columns, need_vol=False, need_quote=True,
+                           as_of=as_of), lambda plan: _iv_outputs(plan) + names + ("status",),
+                compute)

@@ -40,6 +40,10 @@ class _PackageStamp:
         return super().from_function(py_func, py_file)
 
 
+class KernelUserProvidedLocator(_PackageStamp, caching.UserProvidedCacheLocator):
+    """Cache in NUMBA_CACHE_DIR when it is set (numba's own precedence)."""
+
+
 class KernelInTreeLocator(_PackageStamp, caching.InTreeCacheLocator):
     """Cache in kernel/__pycache__ (a source checkout or a writable install)."""
 
@@ -50,6 +54,6 @@ class KernelUserWideLocator(_PackageStamp, caching.UserWideCacheLocator):
 
 def install() -> None:
     classes = caching.CacheImpl._locator_classes
-    for cls in (KernelUserWideLocator, KernelInTreeLocator):
+    for cls in (KernelUserWideLocator, KernelInTreeLocator, KernelUserProvidedLocator):
         if cls not in classes:
             classes.insert(0, cls)

@@ -216,3 +216,98 @@ def test_expiry_years_preferred_over_timestamps_unless_expiry_is_mapped():
     assert mapped.column("price")[0].as_py() < half  # 0.2 years, not 0.5
     with pytest.raises(ValueError, match="expiry"):
         volsweep.price(t, as_of=as_of, columns={"expiry": "expiry", "expiry_years": "expiry_years"})
+
+
+# ----------------------------------------------------------------- implied_vol, greeks
+
+def _quote_table(**over):
+    base = dict(spot=[42.0], strike=[40.0], expiry_years=[0.5], rate=[0.1], is_call=[True],
+                premium=[HULL_CALL])
+    base.update(over)
+    return pa.table(base)
+
+
+def test_implied_vol_inverts_the_handbook_price():
+    out = volsweep.implied_vol(_quote_table())
+    assert out.column_names[-2:] == ["iv", "status"]
+    assert out.column("status").to_pylist() == ["ok"]
+    assert out.column("iv")[0].as_py() == pytest.approx(0.2, rel=1e-13)
+
+
+@pytest.mark.parametrize("premium, status", [
+    (1.0, "below_intrinsic"),          # intrinsic is S - K e^{-rT} = 3.95
+    (-0.5, "below_intrinsic"),
+    (42.0, "above_upper_bound"),       # a call is worth less than the spot (common practice)
+    (np.nan, "missing_input"),
+    (np.inf, "non_finite_input"),
+])
+def test_implied_vol_status_per_row(premium, status):
+    out = volsweep.implied_vol(_quote_table(spot=[42.0, 42.0], strike=[40.0, 40.0],
+                                            expiry_years=[0.5, 0.5], rate=[0.1, 0.1],
+                                            is_call=[True, True], premium=[HULL_CALL, premium]))
+    assert out.column("status").to_pylist() == ["ok", status]
+    assert out.column("iv")[1].as_py() is None
+    assert out.column("iv")[0].as_py() == pytest.approx(0.2, rel=1e-13)
+
+
+def test_implied_vol_from_bid_ask_gives_three_vols_and_statuses():
+    put = 0.8085993729000922  # the Hull example's put at 20% (put-call parity from HULL_CALL)
+    t = pa.table(dict(spot=[42.0] * 4, strike=[40.0] * 4, expiry_years=[0.5] * 4,
+                      rate=[0.1] * 4, is_call=[True, False, True, True],
+                      bid=[HULL_CALL - 0.05, put - 0.02, 5.0, 0.0],
+                      ask=[HULL_CALL + 0.05, put + 0.02, 4.9, 4.8]))
+    out = volsweep.implied_vol(t)
+    assert out.column_names[-7:] == ["iv_bid", "iv_ask", "iv", "iv_spread_uncertainty",
+                                     "status_bid", "status_ask", "status"]
+    assert out.column("status").to_pylist() == ["ok", "ok", "crossed_quote", "zero_bid"]
+    assert out.column("status_bid").to_pylist() == ["ok", "ok", "crossed_quote", "zero_bid"]
+    assert out.column("status_ask").to_pylist() == ["ok", "ok", "crossed_quote", "ok"]
+    iv_b, iv, iv_a = (out.column(c).to_pylist() for c in ("iv_bid", "iv", "iv_ask"))
+    assert iv_b[0] < iv[0] < iv_a[0] and iv_b[1] < iv[1] < iv_a[1]
+    assert iv[0] == pytest.approx(0.2, abs=1e-6)  # the mid is the model price
+    assert iv[2] is None and iv[3] is None and iv_b[3] is None and iv_a[3] is not None
+    # half-spread / vega: 0.05 / (S sqrt(T) phi(d1)) for the call, to first order
+    g = volsweep.greeks(_row_table(), which="vega")
+    unc = out.column("iv_spread_uncertainty")[0].as_py()
+    assert unc == pytest.approx(0.05 / g.column("vega")[0].as_py(), rel=1e-6)
+
+
+def test_implied_vol_needs_a_quote_column():
+    with pytest.raises(ValueError, match="premium"):
+        volsweep.implied_vol(_quote_table().drop_columns(["premium"]))
+    with pytest.raises(ValueError, match="ask"):
+        volsweep.implied_vol(_quote_table().drop_columns(["premium"]).append_column(
+            "bid", pa.array([1.0])))
+
+
+def test_greeks_handbook_example_in_desk_units():
+    # Hull, "Options, Futures, and Other Derivatives": S=49, K=50, r=5%, sigma=20%,
+    # T=20 weeks (from memory: delta 0.522, gamma 0.066, theta -4.31/yr, vega 12.1 per
+    # unit vol, rho 8.91 per unit rate; re-derived with mpmath in tests/test_greeks.py).
+    t = volsweep.greeks({"spot": 49.0, "strike": 50.0, "expiry_years": 20 / 52, "rate": 0.05,
+                         "vol": 0.2, "is_call": True},
+                        which=["delta", "gamma", "theta", "vega", "rho"], units="desk")
+    row = t.to_pylist()[0]
+    assert row["status"] == "ok"
+    assert round(row["delta"], 3) == 0.522 and round(row["gamma"], 3) == 0.066
+    assert round(row["theta"] * 365, 2) == -4.31
+    assert round(row["vega"] * 100, 1) == 12.1 and round(row["rho"] * 100, 2) == 8.91
+
+
+def test_greeks_default_is_all_of_the_model():
+    bsm = volsweep.greeks(_row_table())
+    assert bsm.column_names[-len(volsweep.GREEK_NAMES) - 1:] == list(volsweep.GREEK_NAMES) + [
+        "status"]
+    b76 = volsweep.greeks(_row_table().rename_columns(
+        ["forward", "strike", "expiry_years", "rate", "vol", "is_call"]), model="black76")
+    assert "div_rho" not in b76.column_names and "delta" in b76.column_names
+
+
+def test_greeks_bad_rows_are_null_and_unknown_names_raise():
+    out = volsweep.greeks(_row_table(vol=[-1.0]), which="delta")
+    assert out.column("status").to_pylist() == ["negative_vol"]
+    assert out.column("delta")[0].as_py() is None
+    with pytest.raises(ValueError, match="deltoid"):
+        volsweep.greeks(_row_table(), which="deltoid")
+    with pytest.raises(ValueError, match="units"):
+        volsweep.greeks(_row_table(), units="bps")

@@ -8,7 +8,8 @@ from volsweep.kernel import _cache, black
 def test_kernel_loops_use_the_package_wide_cache_stamp():
     black.black76_price.enable_caching()
     locator = black.black76_price._cache._impl.locator
-    assert isinstance(locator, (_cache.KernelInTreeLocator, _cache.KernelUserWideLocator))
+    assert isinstance(locator, (_cache.KernelInTreeLocator, _cache.KernelUserWideLocator,
+                                _cache.KernelUserProvidedLocator))
     assert locator.get_source_stamp() == _cache.kernel_source_hash()
 
 
