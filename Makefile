@@ -6,6 +6,11 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
+# Compiled kernels are cached on disk, keyed on a hash of the kernel sources (kernel/_cache.py),
+# in one folder shared by every checkout on this machine: a fresh clone with the same kernel
+# loads them instead of compiling again.  Override NUMBA_CACHE_DIR to move it.
+export NUMBA_CACHE_DIR ?= $(HOME)/.cache/volsweep/numba
+
 .PHONY: demo test bench clean
 
 $(STAMP): pyproject.toml

@@ -41,7 +41,16 @@ class _PackageStamp:
 
 
 class KernelUserProvidedLocator(_PackageStamp, caching.UserProvidedCacheLocator):
-    """Cache in NUMBA_CACHE_DIR when it is set (numba's own precedence)."""
+    """Cache in NUMBA_CACHE_DIR when it is set (numba's own precedence).
+
+    The folder does not depend on where the sources are: the stamp already identifies the
+    kernel sources exactly, so two checkouts of the same kernel (a CI clone beside a
+    developer's tree, Dask workers on a shared file system) share one compiled cache.
+    """
+
+    def __init__(self, py_func, py_file):
+        super().__init__(py_func, py_file)
+        self._cache_path = os.path.join(caching.config.CACHE_DIR, "volsweep-kernel")
 
 
 class KernelInTreeLocator(_PackageStamp, caching.InTreeCacheLocator):
