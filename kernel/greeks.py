@@ -94,7 +94,7 @@ from numba import prange
 
 from . import status as S
 from ._intrinsics import fma
-from ._jit import loop, scalar
+from ._jit import loop, scalar, serial_loop
 from .black import input_status, spot_status
 from .special import erfcx, exp, log
 
@@ -159,12 +159,9 @@ def desk_factors(mask):
 # ------------------------------------------------------------------ scalar tier
 
 @scalar
-def _greeks(F, K, T, D, Dq, U, q, vol, w, spot):
+def _shared(F, K, T, D, vol, w):
+    # what depends on d1 and d2: the special functions and the price (see _from_shared)
     sqT = math.sqrt(T)
-    iT = 1.0 / T
-    r = -log(D) * iT
-    b = r - q if spot else 0.0           # cost of carry
-    qe = q if spot else r                # r - b
     s = min(vol * sqT, _S_HUGE)
     pos = s > _S_TINY
     iK = 1.0 / K
@@ -198,14 +195,24 @@ def _greeks(F, K, T, D, Dq, U, q, vol, w, spot):
     V = D * (max(w * (F - K), 0.0) + otm)
 
     inv_s = inv_s0 if live else 0.0      # +inf at the strike with s == 0
-    iU = 1.0 / U
     d1s = hs + 0.5                       # d1 / s
     d2s = hs - 0.5                       # d2 / s
+    return (sqT, iK, inv_s, n1, n2, N1, N2, V, d1, d2, d1s, d2s)
+
+
+@scalar
+def _from_shared(K, T, D, Dq, U, q, vol, w, spot, sh):
+    # the Greeks from the intermediates, the rate and the carry
+    sqT, iK, inv_s, n1, n2, N1, N2, V, d1, d2, d1s, d2s = sh
+    iT = 1.0 / T
+    r = -log(D) * iT
+    b = r - q if spot else 0.0           # cost of carry
+    qe = q if spot else r                # r - b
+    bs = b * inv_s if b != 0.0 else 0.0
+    iU = 1.0 / U
     d12 = d1 * d2
     A = U * Dq
     i2T = 0.5 * iT
-    bs = b * inv_s if b != 0.0 else 0.0
-
     delta = w * Dq * N1
     gamma = Dq * n1 * inv_s * iU
     vega = A * n1 * sqT
@@ -226,6 +233,11 @@ def _greeks(F, K, T, D, Dq, U, q, vol, w, spot):
     dual_gamma = D * n2 * inv_s * iK
     return (delta, gamma, vega, theta, rho, div_rho, vanna, volga, charm, veta, speed,
             zomma, color, ultima, dual_delta, dual_gamma)
+
+
+@scalar
+def _greeks(F, K, T, D, Dq, U, q, vol, w, spot):
+    return _from_shared(K, T, D, Dq, U, q, vol, w, spot, _shared(F, K, T, D, vol, w))
 
 
 @scalar
@@ -255,7 +267,7 @@ def greeks_spot(spot, K, T, D, q, vol, w):
 
 # ------------------------------------------------------------------ loop tier
 
-_BLOCK = 128       # rows per scratch block: (16 + 1) * 128 doubles = 17 KiB, in L1
+_BLOCK = 64        # rows per scratch block: (16 + 1 + 13) * 64 doubles = 15 KiB, in L1
 _MAX_TASKS = 256   # parallel tasks of the blocked loop (each owns one scratch buffer)
 _DIRECT_MAX = 6    # up to this many Greeks the loop stores straight into out
 
@@ -342,6 +354,32 @@ def _flush(buf, nsel, out, status, start, cnt):
         status[np.uint64(start + j)] = np.int8(buf[nsel, np.uint64(j)])
 
 
+_N_SHARED = 12   # length of the tuple returned by _shared
+
+
+@scalar
+def _put_shared(buf, r0, j, sh):
+    buf[r0 + 0, j] = sh[0]
+    buf[r0 + 1, j] = sh[1]
+    buf[r0 + 2, j] = sh[2]
+    buf[r0 + 3, j] = sh[3]
+    buf[r0 + 4, j] = sh[4]
+    buf[r0 + 5, j] = sh[5]
+    buf[r0 + 6, j] = sh[6]
+    buf[r0 + 7, j] = sh[7]
+    buf[r0 + 8, j] = sh[8]
+    buf[r0 + 9, j] = sh[9]
+    buf[r0 + 10, j] = sh[10]
+    buf[r0 + 11, j] = sh[11]
+
+
+@scalar
+def _get_shared(buf, r0, j):
+    return (buf[r0 + 0, j], buf[r0 + 1, j], buf[r0 + 2, j], buf[r0 + 3, j],
+            buf[r0 + 4, j], buf[r0 + 5, j], buf[r0 + 6, j], buf[r0 + 7, j],
+            buf[r0 + 8, j], buf[r0 + 9, j], buf[r0 + 10, j], buf[r0 + 11, j])
+
+
 def _slots(mask):
     slots, j = [], 0
     for k in range(N_GREEKS):
@@ -358,15 +396,16 @@ def _slots(mask):
 # stores into a select per element and keeps the loop from vectorising.
 
 @functools.lru_cache(maxsize=None)
-def _kernel(model, mask, direct=None):
+def _kernel(model, mask, direct=None, serial=False):
     """The loop specialised to one model and one mask (compiled on first use)."""
     sl, nsel = _slots(mask)
     B = _BLOCK
+    deco = serial_loop if serial else loop  # serial: called per block by kernel/sweep.py
     if direct is None:
         direct = nsel <= _DIRECT_MAX
 
     if model == "black76" and direct:
-        @loop
+        @deco
         def kern(F, K, T, D, vol, cp, out, status):
             for i in prange(F.shape[0]):
                 st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp, i)
@@ -375,29 +414,38 @@ def _kernel(model, mask, direct=None):
                 status[i] = st
         return kern
 
+    r0 = nsel + 1     # first scratch row of the shared intermediates
+    nbuf = r0 + _N_SHARED + 1
+
     if model == "black76":
-        @loop
+        @deco
         def kern(F, K, T, D, vol, cp, out, status):
             n = F.shape[0]
             nblk = (n + B - 1) // B
             ntask = min(nblk, _MAX_TASKS)
             for task in prange(ntask):
-                buf = np.empty((nsel + 1, B))
+                buf = np.empty((nbuf, B))
                 for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
                     start = blk * B
                     cnt = min(B, n - start)
-                    for j in range(cnt):
+                    for j in range(cnt):        # pass 1: the intermediates
                         jj = np.uint64(j)
                         st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp,
                                                         np.uint64(start + j))
-                        g = greeks_forward(f, k, tt, d, v, w)
-                        _store(buf, jj, g, st == S.OK, sl)
+                        _put_shared(buf, r0, jj, _shared(f, k, tt, d, v, w))
                         buf[nsel, jj] = float(st)
+                    for j in range(cnt):        # pass 2: the requested Greeks
+                        jj = np.uint64(j)
+                        i = np.uint64(start + j)
+                        d = D[i]
+                        g = _from_shared(K[i], T[i], d, d, F[i], 0.0, vol[i], float(cp[i]),
+                                         False, _get_shared(buf, r0, jj))
+                        _store(buf, jj, g, buf[nsel, jj] == 0.0, sl)
                     _flush(buf, nsel, out, status, start, cnt)
         return kern
 
     if direct:
-        @loop
+        @deco
         def kern(spot, K, T, D, q, vol, cp, out, status):
             for i in prange(spot.shape[0]):
                 st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
@@ -406,23 +454,30 @@ def _kernel(model, mask, direct=None):
                 status[i] = st
         return kern
 
-    @loop
+    @deco
     def kern(spot, K, T, D, q, vol, cp, out, status):
         n = spot.shape[0]
         nblk = (n + B - 1) // B
         ntask = min(nblk, _MAX_TASKS)
         for task in prange(ntask):
-            buf = np.empty((nsel + 1, B))
+            buf = np.empty((nbuf, B))
             for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
                 start = blk * B
                 cnt = min(B, n - start)
-                for j in range(cnt):
+                for j in range(cnt):            # pass 1: the intermediates
                     jj = np.uint64(j)
                     st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp,
                                                                np.uint64(start + j))
-                    g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
-                    _store(buf, jj, g, st == S.OK, sl)
+                    _put_shared(buf, r0, jj, _shared(f, k, tt, d, v, w))
+                    buf[r0 + _N_SHARED, jj] = dq
                     buf[nsel, jj] = float(st)
+                for j in range(cnt):            # pass 2: the requested Greeks
+                    jj = np.uint64(j)
+                    i = np.uint64(start + j)
+                    g = _from_shared(K[i], T[i], D[i], buf[r0 + _N_SHARED, jj], spot[i],
+                                     q[i], vol[i], float(cp[i]), True,
+                                     _get_shared(buf, r0, jj))
+                    _store(buf, jj, g, buf[nsel, jj] == 0.0, sl)
                 _flush(buf, nsel, out, status, start, cnt)
     return kern
 

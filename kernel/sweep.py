@@ -1,84 +1,66 @@
 """One pass from quotes to implied vols and Greeks.
 
-Each row is read once: inputs are validated, the premium is inverted (``implied``), and
-the requested Greeks are evaluated at that vol (``greeks``), all in registers.  Rows
+Rows are processed in blocks small enough to stay in cache: the premiums of a block are
+inverted (``implied``), then the requested Greeks are evaluated at those vols
+(``greeks``), so main memory is read once.  Rows
 without an implied vol get NaN Greeks and the implied-vol status.  Like the Greeks loops,
 each mask of requested Greeks gets its own compiled loop, so unrequested Greeks cost
 nothing.
 """
 
 import functools
-import math
 
 import numpy as np
 from numba import prange
 
-from . import status as S
-from ._jit import loop, scalar
-from .black import input_status, spot_status
-from .greeks import (ALL_GREEKS, _greeks_spot, _slots, _store, greeks_forward)
-from .implied import black_total_vol
-from .special import exp
-
-NAN = np.nan
+from . import greeks as _greeks
+from . import implied as _implied
+from ._jit import loop, serial_loop
+from .greeks import ALL_GREEKS
 
 
-@scalar
-def _iv_row(P, f, k, tt, d, w, st):
-    """(sigma, status) of one row whose input status is ``st``; placeholders if not ok."""
-    ok = st == S.OK
-    s, st2 = black_total_vol(P, f if ok else 1.0, k if ok else 1.0, d if ok else 1.0,
-                             w if ok else 1.0)
-    st = st2 if ok else st
-    good = st == S.OK
-    return (s / math.sqrt(tt) if good else NAN), st
+_BLOCK = 2048  # rows per block: its inputs stay in L1/L2 between the two steps
+
+# Serial row loops, compiled once per model (and per mask for the Greeks) and *called*,
+# not inlined, from the block loop below.  Inlining the implied-vol solver and all the
+# Greeks into one function made numba's compile time explode (minutes per mask); a call
+# per block of 2048 rows costs nothing measurable.
+_iv_serial = {
+    "black76": serial_loop(_implied.black76_iv.py_func),
+    "bsm": serial_loop(_implied.bsm_iv.py_func),
+}
 
 
 @functools.lru_cache(maxsize=None)
 def _kernel(model, mask):
-    sl, _ = _slots(mask)
+    iv_rows = _iv_serial[model]
+    greek_rows = _greeks._kernel(model, mask, direct=True, serial=True)
+    B = _BLOCK
 
     if model == "black76":
         @loop
-        def kern(premium, F, K, T, D, cp, iv_out, out, status):
-            for i in prange(F.shape[0]):
-                f = F[i]
-                k = K[i]
-                tt = T[i]
-                d = D[i]
-                w = float(cp[i])
-                st = input_status(f, k, tt, d, 0.0, cp[i])
-                sig, st = _iv_row(premium[i], f, k, tt, d, w, st)
-                ok = st == S.OK
-                g = greeks_forward(f if ok else 1.0, k if ok else 1.0, tt if ok else 1.0,
-                                   d if ok else 1.0, sig if ok else 0.2, w if ok else 1.0)
-                iv_out[i] = sig
-                _store(out, i, g, ok, sl)
-                status[i] = st
+        def kern(premium, F, K, T, D, cp, iv_out, out, status, scratch):
+            n = F.shape[0]
+            for blk in prange((n + B - 1) // B):
+                a = blk * B
+                e = min(n, a + B)
+                iv_rows(premium[a:e], F[a:e], K[a:e], T[a:e], D[a:e], cp[a:e], iv_out[a:e],
+                        status[a:e])
+                # rows without an iv have a NaN vol: their Greeks come out NaN
+                greek_rows(F[a:e], K[a:e], T[a:e], D[a:e], iv_out[a:e], cp[a:e], out[:, a:e],
+                           scratch[a:e])
         return kern
 
     @loop
-    def kern(premium, spot, K, T, D, q, cp, iv_out, out, status):
-        for i in prange(spot.shape[0]):
-            u = spot[i]
-            k = K[i]
-            tt = T[i]
-            d = D[i]
-            y = q[i]
-            w = float(cp[i])
-            st = input_status(u, k, tt, d, 0.0, cp[i])
-            dq = exp(-y * tt)
-            f = u * dq / d
-            st2 = spot_status(u, tt, d, y, f)
-            st = st2 if (st == S.OK and st2 != S.OK) else st
-            sig, st = _iv_row(premium[i], f, k, tt, d, w, st)
-            ok = st == S.OK
-            g = _greeks_spot(u if ok else 1.0, k if ok else 1.0, tt if ok else 1.0,
-                             d if ok else 1.0, y if ok else 0.0, dq if ok else 1.0,
-                             f if ok else 1.0, sig if ok else 0.2, w if ok else 1.0)
-            iv_out[i] = sig
-            _store(out, i, g, ok, sl)
-            status[i] = st
+    def kern(premium, spot, K, T, D, q, cp, iv_out, out, status, scratch):
+        n = spot.shape[0]
+        for blk in prange((n + B - 1) // B):
+            a = blk * B
+            e = min(n, a + B)
+            iv_rows(premium[a:e], spot[a:e], K[a:e], T[a:e], D[a:e], q[a:e], cp[a:e],
+                    iv_out[a:e], status[a:e])
+            greek_rows(spot[a:e], K[a:e], T[a:e], D[a:e], q[a:e], iv_out[a:e], cp[a:e],
+                       out[:, a:e], scratch[a:e])
     return kern
 
 
@@ -96,11 +78,13 @@ def black76_sweep(premium, F, K, T, D, cp, mask, iv_out, out, status):
     """Black-76 implied vol of ``premium`` and the Greeks in ``mask`` at that vol."""
     mask = int(mask)
     _check(F.shape[0], mask, iv_out, out, status)
-    _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status)
+    _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status,
+                             np.empty(F.shape[0], np.int8))
 
 
 def bsm_sweep(premium, spot, K, T, D, q, cp, mask, iv_out, out, status):
     """BSM implied vol of ``premium`` and the Greeks in ``mask`` (against spot)."""
     mask = int(mask)
     _check(spot.shape[0], mask, iv_out, out, status)
-    _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status)
+    _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status,
+                         np.empty(spot.shape[0], np.int8))
