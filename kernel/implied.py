@@ -49,7 +49,7 @@ from . import status as S
 from ._intrinsics import fma
 from ._jit import loop, scalar
 from .black import _is_inf, _is_nan, bsm_forward, input_status, spot_status
-from .special import erfcx, exp, log, norm_cdf
+from .special import erfcx, exp, log
 
 NAN = np.nan
 INF = np.inf
@@ -85,12 +85,11 @@ def _neg_ppf(p, lp):
     u = q * q
     num = _PC[0] + u * (_PC[1] + u * (_PC[2] + u * _PC[3]))
     den = 1.0 + u * (_QC[0] + u * (_QC[1] + u * (_QC[2] + u * _QC[3])))
-    yc = q * num / den
     r = math.sqrt(max(-2.0 * lp, 0.0))
-    num = _PT[0] + r * (_PT[1] + r * (_PT[2] + r * (_PT[3] + r * _PT[4])))
-    den = 1.0 + r * (_QT[0] + r * (_QT[1] + r * (_QT[2] + r * _QT[3])))
-    yt = num / den
-    return yc if p > _PPF_SPLIT else yt
+    numt = _PT[0] + r * (_PT[1] + r * (_PT[2] + r * (_PT[3] + r * _PT[4])))
+    dent = 1.0 + r * (_QT[0] + r * (_QT[1] + r * (_QT[2] + r * _QT[3])))
+    central = p > _PPF_SPLIT
+    return (q * num if central else numt) / (den if central else dent)
 
 
 @scalar
@@ -104,24 +103,26 @@ def _two_diff(a, b):
 @scalar
 def log_moneyness(F, K):
     """ln(F/K) to about one ulp of the result (the rounding of F/K is corrected)."""
-    q = F / K
-    big = q > _BIG_R
-    small = q < 1.0 / _BIG_R
-    q2 = (F * (1.0 / _BIG_R)) / K if big else ((F * _BIG_R) / K if small else q)
+    big = F > K * _BIG_R
+    small = F * _BIG_R < K
+    Fs = F * ((1.0 / _BIG_R) if big else (_BIG_R if small else 1.0))
+    q = Fs / K
     shift = 1000.0 * _LN2 if big else (-1000.0 * _LN2 if small else 0.0)
-    # F = q K + e exactly, so ln(F/K) = ln q + ln(1 + e/(qK)) ~ ln q + e/F
-    corr = fma(-q, K, F) / F
-    return log(q2) + shift + (0.0 if (big or small) else corr)
+    # Fs = q K + e exactly, so ln(Fs/K) = ln q + ln(1 + e/(qK)) ~ ln q + e/Fs
+    corr = fma(-q, K, Fs) / Fs
+    return log(q) + shift + corr
 
 
 @scalar
 def normalised_time_value(P, F, K, D, theta):
-    """The premium as the solver sees it: (r, ln r, c, status).
+    """The premium as the solver sees it: (r, rs, lsc, c, status).
 
     r = tv / A is the undiscounted time value over its upper bound A = min(F, K) (it may
-    underflow for tiny premiums; ln r does not), c = (U - P/D) / A = 1 - r formed from the
-    inputs, U = F for calls and K for puts.  status is OK, MISSING_INPUT / NON_FINITE_INPUT
-    (premium NaN / inf), BELOW_INTRINSIC, ABOVE_UPPER_BOUND or NO_TIME_VALUE.
+    underflow for tiny premiums); rs = r e^lsc is the same ratio kept in range (lsc = 0,
+    or 200 ln 2 for premiums below 2^-800), so ln r = ln rs - lsc; c = (U - P/D) / A is
+    1 - r formed from the inputs, U = F for calls and K for puts.  status is OK,
+    MISSING_INPUT / NON_FINITE_INPUT (premium NaN / inf), BELOW_INTRINSIC,
+    ABOVE_UPPER_BOUND or NO_TIME_VALUE.
     Valid F, K, D > 0 and theta = +-1 are assumed.
     """
     call = theta > 0.0
@@ -132,33 +133,37 @@ def normalised_time_value(P, F, K, D, theta):
     scale = _UP if small else 1.0
     Ps = P * scale
     # P/D = q + qlo exactly up to the rounding of qlo (the remainder is exact)
-    q = Ps / D
-    qlo = fma(-q, D, Ps) / D
+    # the remainder Ps - q D is exact for any q within an ulp of the quotient
+    invD = 1.0 / D
+    q = Ps * invD
+    qlo = fma(-q, D, Ps) * invD
     itm = U > V
     d, de = _two_diff(U, V)
     d = d * scale if itm else 0.0
     de = de * scale if itm else 0.0
     t, et = _two_diff(q, d)
     tv = t + ((et + qlo) - de)
-    rs = tv / A
-    lr = log(rs if rs > 0.0 else 1.0) - (_LN_UP if small else 0.0)
+    invA = 1.0 / A
+    rs = tv * invA
+    lsc = _LN_UP if small else 0.0
     r = rs * (1.0 / _UP) if small else rs
-    q1 = P / D
-    q1lo = fma(-q1, D, P) / D
+    q1 = q * (1.0 / _UP) if small else q
+    q1lo = fma(-q1, D, P) * invD
     u1, eu = _two_diff(U, q1)
-    c = (u1 + (eu - q1lo)) / A
+    c = (u1 + (eu - q1lo)) * invA
     st = S.NO_TIME_VALUE if not (rs > 0.0) else S.OK
     st = S.ABOVE_UPPER_BOUND if fma(-D, U, P) >= 0.0 else st
     st = S.BELOW_INTRINSIC if (tv < 0.0 or P < 0.0) else st
     st = S.NON_FINITE_INPUT if _is_inf(P) else st
     st = S.MISSING_INPUT if _is_nan(P) else st
-    return r, lr, c, st
+    return r, rs, lsc, c, st
 
 
 @scalar
 def _householder(s, x, lt, upper):
     """One Householder step (order 3) on ln y(s) = lt, y = r (lower) or c (upper), x <= 0."""
-    h = x / s
+    inv_s = 1.0 / s
+    h = x * inv_s
     t = 0.5 * s
     d1 = h + t
     u2 = t - h
@@ -170,14 +175,21 @@ def _householder(s, x, lt, upper):
     match = wing != upper
     arg = 0.5 * sw if match else 1.0 - 0.5 * e1 * sw
     ell = log(arg) + (-0.5 * d1 * d1 if match else 0.0)
-    # s y'/y, with y' = +-phi(d1) per upper bound: the objective's elasticity
-    ratio = (2.0 * _INV_SQRT2PI) / sw if match else (_INV_SQRT2PI * e1) / arg
-    g1 = -s * ratio if upper else s * ratio
+    # g1 = s y'/y (y' = +-phi(d1) per upper bound), the objective's elasticity:
+    # g1 = +-s n / m with n / m = 2 / (sqrt(2pi) sw) or e1 / (sqrt(2pi) arg); one
+    # reciprocal gives both g1 and 1/g1
+    n = (2.0 if match else e1) * s
+    m = _SQRT2PI * (sw if match else arg)
+    inv = 1.0 / (n * m)
+    g1 = n * n * inv
+    ig1 = m * m * inv
+    g1 = -g1 if upper else g1
+    ig1 = -ig1 if upper else ig1
     sb2 = h * h - t * t                    # s b''/b'
     s2b3 = sb2 * sb2 - 3.0 * h * h - t * t  # s^2 b'''/b'
     h2 = sb2 - g1                          # s (ln y)'' / (ln y)'
     h3 = s2b3 - 3.0 * g1 * sb2 + 2.0 * g1 * g1
-    nu = (lt - ell) / g1                   # Newton step over s
+    nu = (lt - ell) * ig1                  # Newton step over s
     dl = nu * (1.0 + 0.5 * nu * h2) / (1.0 + nu * (h2 + nu * h3 * (1.0 / 6.0)))
     dl = dl if (dl == dl and abs(dl) < INF) else 0.0
     dl = min(max(dl, -0.75), 3.0)
@@ -197,39 +209,46 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
     # lower: rational cubic of f(beta) on [0, b_c]: f(0)=0, f'(0)=1; value, slope and
     # curvature of f_l(s(beta)) at s_c (b'' = 0 there).  All per b_c; t = r / r_c.
     kap = _KAPPA * xi
-    phl = kap * p2 * p2 * p2 * g / rc
-    d1l = (1.5 / _SQRT3) * kap * p2 * p2 * g
-    zc = -sxi * 0.4082482904638631                # -sqrt(xi/6)
-    br = (2.0 * _INV_SQRT2PI - zc * p2) * (1.0 / 12.0) - p2 / (math.sqrt(6.0 * xi) + 1e-300)
-    hdd_l = 3.0 * kap * p2 * _SQRT2PI * rc * g * br
-    # upper: f(c) on [0, c_c]: f(0)=0, f'(0)=1/2; per c_c; t = c / c_c
     kc = 1.0 - rc
-    phu = p2 * g / kc
+    ih = 1.0 / (rc if lower else kc)              # 1 / interval length (per bound)
+    # lower: rational cubic of f(beta) on [0, b_c]: f(0)=0, f'(0)=1; value, slope and
+    # curvature of f_l(s(beta)) at s_c (b'' = 0 there).  All per b_c; t = r / r_c.
+    phl = kap * p2 * p2 * p2 * g
+    d1l = (1.5 / _SQRT3) * kap * p2 * p2 * g
+    # kap * [(2 phi - z Phi) z'^2 + Phi z''] / (E12 Phi...) at s_c, z = -sqrt(xi/6)
+    zc = -sxi * 0.4082482904638631
+    kbr = kap * (2.0 * _INV_SQRT2PI - zc * p2) * (1.0 / 12.0) \
+        - _KAPPA * p2 * sxi * 0.4082482904638631
+    hdd_l = 3.0 * p2 * _SQRT2PI * rc * g * kbr
+    # upper: f(c) on [0, c_c]: f(0)=0, f'(0)=1/2; per c_c; t = c / c_c
     d1u = 0.5 * g
     hdd_u = kc * (0.125 * sc) * _SQRT2PI * g
-    phi_ = phl if lower else phu
+    phi_ = (phl if lower else p2 * g) * ih
     d0 = 1.0 if lower else 0.5
     d1 = d1l if lower else d1u
     hdd = hdd_l if lower else hdd_u
-    tt = r / rc if lower else c / kc
+    tt = (r if lower else c) * ih
     tt = min(max(tt, 0.0), 1.0)
-    rr = (0.5 * hdd + (d1 - d0)) / (d1 - phi_)
-    rmin = (d0 + d1) / phi_
+    # Delbourgo-Gregory parameter matching the curvature at t = 1, kept >= the
+    # monotonicity bound (d0 + d1) / phi_ (one reciprocal for both quotients)
+    inv = 1.0 / ((d1 - phi_) * phi_)
+    rr = (0.5 * hdd + (d1 - d0)) * phi_ * inv
+    rmin = (d0 + d1) * (d1 - phi_) * inv
     rr = rr if rr >= rmin else rmin
-    rr = rr if (rr == rr and rr < 1e300) else 3.0
+    rr = rr if (rr == rr and abs(rr) < 1e300) else 3.0
     om = 1.0 - tt
     num = phi_ * tt * tt + (rr * phi_ - d1) * tt * om + d0 * om * om
-    ratio = num / (1.0 + (rr - 3.0) * tt * om)    # f / price
-    # ln p for Phi^{-1}: lower p = (f / kap)^(1/3), upper p = f
-    lf = lt + x * 0.5 + log(ratio / kap if lower else ratio)
+    # f / price = num / den; ln p for Phi^{-1}: lower p = (f / kap)^(1/3), upper p = f
+    den = (1.0 + (rr - 3.0) * tt * om) * (kap if lower else 1.0)
+    lf = lt + x * 0.5 + log(num / den)
     lp = lf * (1.0 / 3.0) if lower else lf
     p = exp(lp)
     y = _neg_ppf(min(p, 0.5), lp)
-    s0 = xi / (_SQRT3 * y) if lower else 2.0 * y
+    s0 = (xi if lower else 2.0 * y * y) / (y * (_SQRT3 if lower else 1.0))
     # convexity bounds: chord (lower bound) and tangent at s_c (upper bound below s_c,
     # lower bound above)
     tang = sc + ((r - rc) if lower else (kc - c)) * _SQRT2PI
-    chord = sc * r / rc
+    chord = sc * r * ih
     sl = s0 if s0 >= chord else chord
     sl = tang if (tang > 0.0 and not (sl <= tang)) else sl
     sl = sl if sl < INF else max(chord, 0.5 * sc)
@@ -239,14 +258,14 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
 
 
 @scalar
-def implied_total_vol(x, r, lr, c):
-    """Total implied vol s of an out-of-the-money quote, x <= 0; (r, ln r, c) as returned
-    by ``normalised_time_value`` (0 < r < 1).  Returns s > 0, or 0 / NaN where the time
-    value is not resolvable (caller maps it to NO_TIME_VALUE)."""
+def implied_total_vol(x, r, rs, lsc, c):
+    """Total implied vol s of an out-of-the-money quote, x <= 0; (r, rs, lsc, c) as
+    returned by ``normalised_time_value`` (0 < r < 1).  Returns s > 0, or 0 / NaN where
+    the time value is not resolvable (the caller maps it to NO_TIME_VALUE)."""
     sc = math.sqrt(-2.0 * x)
     rc = 0.5 * (1.0 - erfcx(math.sqrt(-x)))        # r at s_c: erfcx(0) term is 1
     lower = r <= rc
-    lt = lr if lower else log(c)
+    lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
     # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
     s = _householder(s, x, lt, not lower)
@@ -258,9 +277,9 @@ def implied_total_vol(x, r, lr, c):
 @scalar
 def black_total_vol(P, F, K, D, theta):
     """(s, status) for one Black-76 quote with valid F, K, D > 0, theta = +-1."""
-    r, lr, c, st = normalised_time_value(P, F, K, D, theta)
+    r, rs, lsc, c, st = normalised_time_value(P, F, K, D, theta)
     x = log_moneyness(F, K)
-    s = implied_total_vol(-abs(x), r, lr, c)
+    s = implied_total_vol(-abs(x), r, rs, lsc, c)
     good = s > 0.0 and s < INF
     st = S.NO_TIME_VALUE if (st == S.OK and not good) else st
     return (s if st == S.OK else NAN), st

@@ -154,12 +154,12 @@ _rt = st.tuples(
 )
 
 
-@settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(_rt, min_size=20, max_size=20))
 def test_round_trip_price_iv_price(rows):
-    # source: common practice (invert our own price); the tolerance is the bar of this file
-    # plus the price kernel's own documented error bound, 8 ulp max(1, e_F + e_K + e_s),
-    # carried to sigma by 1/e_s
+    # source: common practice (invert our own price), against the bar of this file at that
+    # point (the price kernel's own rounding has fitted inside it with a wide margin:
+    # worst 0.38 of the bar over 85k random points)
     x, ls, lF, lT, D, cp = (np.array(c) for c in zip(*rows))
     F = np.exp(lF)
     K = F * np.exp(-x)
@@ -176,7 +176,7 @@ def test_round_trip_price_iv_price(rows):
     iv, stt = iv76(p, F, K, T, D, cp)
     assert (stt == S.OK).all()
     eF, eK, es = elasticities(F, K, T, D, vol, cp, p)
-    tol = tolerance_ulp(eF, eK, es) + ULPS * np.maximum(1.0, eF + eK + es) / es
+    tol = tolerance_ulp(eF, eK, es)
     assert_within(ulp_error(iv, vol), tol, "round trip",
                   {"F": F, "K": K, "T": T, "D": D, "vol": vol, "cp": cp})
 
@@ -202,9 +202,9 @@ def test_put_call_parity_consistency():
     kp = (1 + eFp + eKp) / esp
     well = (stc == S.OK) & (stp == S.OK) & (kc < 1e3) & (kp < 1e3)
     assert well.sum() > n // 10
-    # each side within its own bar (plus the price kernel's) of the common vol
-    tc = tolerance_ulp(eFc, eKc, esc) + ULPS * np.maximum(1, eFc + eKc + esc) / esc
-    tp = tolerance_ulp(eFp, eKp, esp) + ULPS * np.maximum(1, eFp + eKp + esp) / esp
+    # each side within its own bar of the common vol
+    tc = tolerance_ulp(eFc, eKc, esc)
+    tp = tolerance_ulp(eFp, eKp, esp)
     assert_within(ulp_error(ivc[well], ivp[well]), (tc + tp)[well], "call vs put iv")
 
 
