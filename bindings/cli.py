@@ -123,7 +123,12 @@ def cmd_price(args) -> int:
 
 
 def cmd_bench(args) -> int:
-    from benchmarks import report  # noqa: F401  (the benchmark folder of a source checkout)
+    # benchmarks/ lives beside bindings/ in a source checkout (it is not installed)
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    if not os.path.isdir(os.path.join(root, "benchmarks")):
+        raise CliError("volsweep bench needs a source checkout (benchmarks/ not found)")
+    sys.path.insert(0, root)
+    from benchmarks import report
 
     return report.main(rows=args.rows)
 
