@@ -30,8 +30,9 @@ Method (Jaeckel, "Let's Be Rational", 2015, in outline; this is our own construc
    cheap).  The result is clamped into the convexity bounds of the price (chord and tangent
    at s_c).  Its error is below ~40% everywhere, a few % for |x| >= 1.
 4. Two Householder steps of order 3 (fourth-order convergence) on the log objective, with
-   the derivatives of the normalised Black function in closed form.  Fixed count, no loop
-   exits: every row runs the same straight-line code (compute both branches, select).
+   the derivatives of the normalised Black function in closed form, each iterate kept on
+   its region's side of s_c.  Fixed count, no loop exits: every row runs the same
+   straight-line code (compute both branches, select).
 5. Near the money with a time value under ~1e-9 of the forward the log objective of step 2
    cannot resolve the complement; there s = sqrt(2 pi) (r + |x|/2) (the first terms of the
    small-vol expansion of the Black price) is exact to double precision.
@@ -160,29 +161,25 @@ def normalised_time_value(P, F, K, D, theta):
 
 
 @scalar
-def _householder(s, x, lt, upper):
-    """One Householder step (order 3) on ln y(s) = lt, y = r (lower) or c (upper), x <= 0."""
-    inv_s = 1.0 / s
-    h = x * inv_s
+def _householder(s, x, lt, upper, sc):
+    """One Householder step (order 3) on ln y(s) = lt, y = r (lower) or c (upper), x <= 0.
+
+    The iterate is first clamped to its region's side of s_c (the root lies there, so this
+    only ever moves it closer); the region's own formula then applies without cancellation
+    and without the exponential.
+    """
+    s = max(s, sc) if upper else min(s, sc)
+    h = x / s
     t = 0.5 * s
     d1 = h + t
     u2 = t - h
-    wing = d1 <= 0.0
-    ea = erfcx(abs(d1) * _SQRT1_2)
+    ea = erfcx((d1 if upper else -d1) * _SQRT1_2)
     eb = erfcx(u2 * _SQRT1_2)
-    sw = ea - eb if wing else ea + eb      # the region's own, cancellation-free sum
-    e1 = exp(-0.5 * d1 * d1)
-    match = wing != upper
-    arg = 0.5 * sw if match else 1.0 - 0.5 * e1 * sw
-    ell = log(arg) + (-0.5 * d1 * d1 if match else 0.0)
-    # g1 = s y'/y (y' = +-phi(d1) per upper bound), the objective's elasticity:
-    # g1 = +-s n / m with n / m = 2 / (sqrt(2pi) sw) or e1 / (sqrt(2pi) arg); one
-    # reciprocal gives both g1 and 1/g1
-    n = (2.0 if match else e1) * s
-    m = _SQRT2PI * (sw if match else arg)
-    inv = 1.0 / (n * m)
-    g1 = n * n * inv
-    ig1 = m * m * inv
+    sw = ea + eb if upper else ea - eb
+    ell = log(0.5 * sw) - 0.5 * d1 * d1
+    # g1 = s y'/y = +-2 s / (sqrt(2 pi) sw), the objective's elasticity, and 1 / g1
+    g1 = (2.0 * _INV_SQRT2PI) * s / sw
+    ig1 = (0.5 * _SQRT2PI) * sw / s
     g1 = -g1 if upper else g1
     ig1 = -ig1 if upper else ig1
     sb2 = h * h - t * t                    # s b''/b'
@@ -193,7 +190,8 @@ def _householder(s, x, lt, upper):
     dl = nu * (1.0 + 0.5 * nu * h2) / (1.0 + nu * (h2 + nu * h3 * (1.0 / 6.0)))
     dl = dl if (dl == dl and abs(dl) < INF) else 0.0
     dl = min(max(dl, -0.75), 3.0)
-    return s * (1.0 + dl)
+    s = s * (1.0 + dl)
+    return max(s, sc) if upper else min(s, sc)
 
 
 @scalar
@@ -268,8 +266,8 @@ def implied_total_vol(x, r, rs, lsc, c):
     lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
     # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
-    s = _householder(s, x, lt, not lower)
-    s = _householder(s, x, lt, not lower)
+    s = _householder(s, x, lt, not lower, sc)
+    s = _householder(s, x, lt, not lower, sc)
     tiny = (not lower) and r < _R_TINY
     return _SQRT2PI * (r - 0.5 * x) if tiny else s
 
