@@ -88,13 +88,22 @@ def cmd_demo(args) -> int:
     print(f"synthetic snapshot: {snap.num_rows:,d} contracts on "
           f"{len(snap.column('underlying').unique()):,d} fictional underlyings "
           f"(generated in {t_gen:.2f} s)")
+    print("loading compiled kernels (the first run on a machine compiles them: minutes)",
+          flush=True)
     cols = {"vol": "true_vol"}
-    volsweep.price(snap.slice(0, 1000), columns=cols)  # JIT warm-up (loads the cache)
-    t0 = time.perf_counter()
-    priced = volsweep.price(snap, columns=cols)
-    dt = time.perf_counter() - t0
-    print(f"price (BSM, from the true vol): {snap.num_rows / dt / 1e6:,.1f} M contracts/s")
-    print(_status_summary([priced]))
+    quotes = snap.drop_columns(["bid", "ask"])
+    steps = (
+        ("price (BSM, at the true vol)", lambda t: volsweep.price(t, columns=cols)),
+        ("implied vol (from the premium)", lambda t: volsweep.implied_vol(t)),
+        ("sweep (iv + all 16 Greeks)", lambda t: volsweep.sweep(t)),
+    )
+    for label, fn in steps:
+        fn(quotes.slice(0, 1000))  # JIT warm-up (loads the cache)
+        t0 = time.perf_counter()
+        out = fn(quotes)
+        dt = time.perf_counter() - t0
+        print(f"\n{label}: {snap.num_rows / dt / 1e6:,.1f} M contracts/s")
+        print(_status_summary([out]))
     print("Outputs are model values, not investment advice.")
     return 0
 
