@@ -345,39 +345,77 @@ def _store(dst, j, g, ok, sl):
 
 
 @scalar
-def _flush(buf, nsel, out, status, start, cnt):
+def _store_flat(buf, B, j, g, ok, sl):
+    # _store into the flat scratch buffer: row k at offset k * B (B a compile-time constant)
+    if sl[0] >= 0:
+        buf[sl[0] * B + j] = g[0] if ok else NAN
+    if sl[1] >= 0:
+        buf[sl[1] * B + j] = g[1] if ok else NAN
+    if sl[2] >= 0:
+        buf[sl[2] * B + j] = g[2] if ok else NAN
+    if sl[3] >= 0:
+        buf[sl[3] * B + j] = g[3] if ok else NAN
+    if sl[4] >= 0:
+        buf[sl[4] * B + j] = g[4] if ok else NAN
+    if sl[5] >= 0:
+        buf[sl[5] * B + j] = g[5] if ok else NAN
+    if sl[6] >= 0:
+        buf[sl[6] * B + j] = g[6] if ok else NAN
+    if sl[7] >= 0:
+        buf[sl[7] * B + j] = g[7] if ok else NAN
+    if sl[8] >= 0:
+        buf[sl[8] * B + j] = g[8] if ok else NAN
+    if sl[9] >= 0:
+        buf[sl[9] * B + j] = g[9] if ok else NAN
+    if sl[10] >= 0:
+        buf[sl[10] * B + j] = g[10] if ok else NAN
+    if sl[11] >= 0:
+        buf[sl[11] * B + j] = g[11] if ok else NAN
+    if sl[12] >= 0:
+        buf[sl[12] * B + j] = g[12] if ok else NAN
+    if sl[13] >= 0:
+        buf[sl[13] * B + j] = g[13] if ok else NAN
+    if sl[14] >= 0:
+        buf[sl[14] * B + j] = g[14] if ok else NAN
+    if sl[15] >= 0:
+        buf[sl[15] * B + j] = g[15] if ok else NAN
+
+
+@scalar
+def _flush(buf, B, nsel, out, status, start, cnt):
     # copy one block of scratch rows to out and status
     for row in range(nsel):
         for j in range(cnt):
-            out[row, np.uint64(start + j)] = buf[row, np.uint64(j)]
+            out[row, np.uint64(start + j)] = buf[np.uint64(row * B + j)]
     for j in range(cnt):
-        status[np.uint64(start + j)] = np.int8(buf[nsel, np.uint64(j)])
+        status[np.uint64(start + j)] = np.int8(buf[np.uint64(nsel * B + j)])
 
 
 _N_SHARED = 12   # length of the tuple returned by _shared
 
 
 @scalar
-def _put_shared(buf, r0, j, sh):
-    buf[r0 + 0, j] = sh[0]
-    buf[r0 + 1, j] = sh[1]
-    buf[r0 + 2, j] = sh[2]
-    buf[r0 + 3, j] = sh[3]
-    buf[r0 + 4, j] = sh[4]
-    buf[r0 + 5, j] = sh[5]
-    buf[r0 + 6, j] = sh[6]
-    buf[r0 + 7, j] = sh[7]
-    buf[r0 + 8, j] = sh[8]
-    buf[r0 + 9, j] = sh[9]
-    buf[r0 + 10, j] = sh[10]
-    buf[r0 + 11, j] = sh[11]
+def _put_shared(buf, B, r0, j, sh):
+    buf[(r0 + 0) * B + j] = sh[0]
+    buf[(r0 + 1) * B + j] = sh[1]
+    buf[(r0 + 2) * B + j] = sh[2]
+    buf[(r0 + 3) * B + j] = sh[3]
+    buf[(r0 + 4) * B + j] = sh[4]
+    buf[(r0 + 5) * B + j] = sh[5]
+    buf[(r0 + 6) * B + j] = sh[6]
+    buf[(r0 + 7) * B + j] = sh[7]
+    buf[(r0 + 8) * B + j] = sh[8]
+    buf[(r0 + 9) * B + j] = sh[9]
+    buf[(r0 + 10) * B + j] = sh[10]
+    buf[(r0 + 11) * B + j] = sh[11]
 
 
 @scalar
-def _get_shared(buf, r0, j):
-    return (buf[r0 + 0, j], buf[r0 + 1, j], buf[r0 + 2, j], buf[r0 + 3, j],
-            buf[r0 + 4, j], buf[r0 + 5, j], buf[r0 + 6, j], buf[r0 + 7, j],
-            buf[r0 + 8, j], buf[r0 + 9, j], buf[r0 + 10, j], buf[r0 + 11, j])
+def _get_shared(buf, B, r0, j):
+    return (buf[(r0 + 0) * B + j], buf[(r0 + 1) * B + j], buf[(r0 + 2) * B + j],
+            buf[(r0 + 3) * B + j], buf[(r0 + 4) * B + j], buf[(r0 + 5) * B + j],
+            buf[(r0 + 6) * B + j], buf[(r0 + 7) * B + j], buf[(r0 + 8) * B + j],
+            buf[(r0 + 9) * B + j], buf[(r0 + 10) * B + j], buf[(r0 + 11) * B + j])
 
 
 def _slots(mask):
@@ -424,7 +462,7 @@ def _kernel(model, mask, direct=None, serial=False):
             nblk = (n + B - 1) // B
             ntask = min(nblk, _MAX_TASKS)
             for task in prange(ntask):
-                buf = np.empty((nbuf, B))
+                buf = np.empty(nbuf * B)
                 for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
                     start = blk * B
                     cnt = min(B, n - start)
@@ -432,16 +470,16 @@ def _kernel(model, mask, direct=None, serial=False):
                         jj = np.uint64(j)
                         st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp,
                                                         np.uint64(start + j))
-                        _put_shared(buf, r0, jj, _shared(f, k, tt, d, v, w))
-                        buf[nsel, jj] = float(st)
+                        _put_shared(buf, B, r0, jj, _shared(f, k, tt, d, v, w))
+                        buf[nsel * B + jj] = float(st)
                     for j in range(cnt):        # pass 2: the requested Greeks
                         jj = np.uint64(j)
                         i = np.uint64(start + j)
                         d = D[i]
                         g = _from_shared(K[i], T[i], d, d, F[i], 0.0, vol[i], float(cp[i]),
-                                         False, _get_shared(buf, r0, jj))
-                        _store(buf, jj, g, buf[nsel, jj] == 0.0, sl)
-                    _flush(buf, nsel, out, status, start, cnt)
+                                         False, _get_shared(buf, B, r0, jj))
+                        _store_flat(buf, B, jj, g, buf[nsel * B + jj] == 0.0, sl)
+                    _flush(buf, B, nsel, out, status, start, cnt)
         return kern
 
     if direct:
@@ -460,7 +498,7 @@ def _kernel(model, mask, direct=None, serial=False):
         nblk = (n + B - 1) // B
         ntask = min(nblk, _MAX_TASKS)
         for task in prange(ntask):
-            buf = np.empty((nbuf, B))
+            buf = np.empty(nbuf * B)
             for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
                 start = blk * B
                 cnt = min(B, n - start)
@@ -468,17 +506,17 @@ def _kernel(model, mask, direct=None, serial=False):
                     jj = np.uint64(j)
                     st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp,
                                                                np.uint64(start + j))
-                    _put_shared(buf, r0, jj, _shared(f, k, tt, d, v, w))
-                    buf[r0 + _N_SHARED, jj] = dq
-                    buf[nsel, jj] = float(st)
+                    _put_shared(buf, B, r0, jj, _shared(f, k, tt, d, v, w))
+                    buf[(r0 + _N_SHARED) * B + jj] = dq
+                    buf[nsel * B + jj] = float(st)
                 for j in range(cnt):            # pass 2: the requested Greeks
                     jj = np.uint64(j)
                     i = np.uint64(start + j)
-                    g = _from_shared(K[i], T[i], D[i], buf[r0 + _N_SHARED, jj], spot[i],
+                    g = _from_shared(K[i], T[i], D[i], buf[(r0 + _N_SHARED) * B + jj], spot[i],
                                      q[i], vol[i], float(cp[i]), True,
-                                     _get_shared(buf, r0, jj))
-                    _store(buf, jj, g, buf[nsel, jj] == 0.0, sl)
-                _flush(buf, nsel, out, status, start, cnt)
+                                     _get_shared(buf, B, r0, jj))
+                    _store_flat(buf, B, jj, g, buf[nsel * B + jj] == 0.0, sl)
+                _flush(buf, B, nsel, out, status, start, cnt)
     return kern
 
 
