@@ -78,17 +78,17 @@ The caller chooses the Greeks with a bitmask over ``GREEK_NAMES`` (``greek_mask`
 output is ``out[n_requested, n_rows]``, rows in ``GREEK_NAMES`` order.  Each mask gets its
 own compiled loop (closure constants, cached on disk like every kernel; a cold compile
 takes tens of seconds), so a Greek that is not requested is neither computed nor stored:
-measured, a runtime test of the mask inside the loop keeps LLVM from vectorising.  Up to
-``_DIRECT_MAX`` Greeks the loop stores straight into ``out``; beyond, rows are processed
-in blocks of ``_BLOCK`` whose Greeks go to one L1-resident scratch array (fixed offsets, so
-LLVM needs no runtime aliasing checks between them: more than about eight separate output
-streams exceed its limit on such checks and the loop stays scalar) and are then copied to
-``out``.  Results do not depend on the mask, the batch size or the number of threads.
+measured, a runtime test of the mask inside the loop kept LLVM from vectorising.  One
+parallel loop over the rows computes the shared intermediates (``_shared``) and then the
+requested Greeks (``_from_shared``) and stores each into its row of ``out``; see the note
+on ``_MEMORY_CHECKS`` for what that needs from LLVM.  Results do not depend on the mask,
+the batch size or the number of threads.
 """
 
 import functools
 import math
 
+import llvmlite.binding as llvm
 import numpy as np
 from numba import prange
 
@@ -267,9 +267,16 @@ def greeks_spot(spot, K, T, D, q, vol, w):
 
 # ------------------------------------------------------------------ loop tier
 
-_BLOCK = 64        # rows per scratch block: (16 + 1 + 13) * 64 doubles = 15 KiB, in L1
-_MAX_TASKS = 256   # parallel tasks of the blocked loop (each owns one scratch buffer)
-_DIRECT_MAX = 6    # up to this many Greeks the loop stores straight into out
+# Each requested Greek is a separate output stream (a row of out).  LLVM vectorises the
+# row loop only after proving with runtime checks that no two streams overlap, and by
+# default it gives up beyond a handful of checks (cl::opt -vectorize-memory-check-
+# threshold): with more than about six Greeks the loop stayed scalar, at a fifth of the
+# speed.  All Greeks and the status need 17 * 16 / 2 + 17 * 7 = 255 checks, done once per
+# chunk of rows.  The option is process-wide and only lets LLVM vectorise loops it would
+# otherwise leave scalar (the checks keep them correct); it must be set before the loops
+# compile, i.e. at import.
+_MEMORY_CHECKS = 512
+llvm.set_option("volsweep", f"-vectorize-memory-check-threshold={_MEMORY_CHECKS}")
 
 
 @scalar
@@ -344,80 +351,6 @@ def _store(dst, j, g, ok, sl):
         dst[sl[15], j] = g[15] if ok else NAN
 
 
-@scalar
-def _store_flat(buf, B, j, g, ok, sl):
-    # _store into the flat scratch buffer: row k at offset k * B (B a compile-time constant)
-    if sl[0] >= 0:
-        buf[sl[0] * B + j] = g[0] if ok else NAN
-    if sl[1] >= 0:
-        buf[sl[1] * B + j] = g[1] if ok else NAN
-    if sl[2] >= 0:
-        buf[sl[2] * B + j] = g[2] if ok else NAN
-    if sl[3] >= 0:
-        buf[sl[3] * B + j] = g[3] if ok else NAN
-    if sl[4] >= 0:
-        buf[sl[4] * B + j] = g[4] if ok else NAN
-    if sl[5] >= 0:
-        buf[sl[5] * B + j] = g[5] if ok else NAN
-    if sl[6] >= 0:
-        buf[sl[6] * B + j] = g[6] if ok else NAN
-    if sl[7] >= 0:
-        buf[sl[7] * B + j] = g[7] if ok else NAN
-    if sl[8] >= 0:
-        buf[sl[8] * B + j] = g[8] if ok else NAN
-    if sl[9] >= 0:
-        buf[sl[9] * B + j] = g[9] if ok else NAN
-    if sl[10] >= 0:
-        buf[sl[10] * B + j] = g[10] if ok else NAN
-    if sl[11] >= 0:
-        buf[sl[11] * B + j] = g[11] if ok else NAN
-    if sl[12] >= 0:
-        buf[sl[12] * B + j] = g[12] if ok else NAN
-    if sl[13] >= 0:
-        buf[sl[13] * B + j] = g[13] if ok else NAN
-    if sl[14] >= 0:
-        buf[sl[14] * B + j] = g[14] if ok else NAN
-    if sl[15] >= 0:
-        buf[sl[15] * B + j] = g[15] if ok else NAN
-
-
-@scalar
-def _flush(buf, B, nsel, out, status, start, cnt):
-    # copy one block of scratch rows to out and status
-    for row in range(nsel):
-        for j in range(cnt):
-            out[row, np.uint64(start + j)] = buf[np.uint64(row * B + j)]
-    for j in range(cnt):
-        status[np.uint64(start + j)] = np.int8(buf[np.uint64(nsel * B + j)])
-
-
-_N_SHARED = 12   # length of the tuple returned by _shared
-
-
-@scalar
-def _put_shared(buf, B, r0, j, sh):
-    buf[(r0 + 0) * B + j] = sh[0]
-    buf[(r0 + 1) * B + j] = sh[1]
-    buf[(r0 + 2) * B + j] = sh[2]
-    buf[(r0 + 3) * B + j] = sh[3]
-    buf[(r0 + 4) * B + j] = sh[4]
-    buf[(r0 + 5) * B + j] = sh[5]
-    buf[(r0 + 6) * B + j] = sh[6]
-    buf[(r0 + 7) * B + j] = sh[7]
-    buf[(r0 + 8) * B + j] = sh[8]
-    buf[(r0 + 9) * B + j] = sh[9]
-    buf[(r0 + 10) * B + j] = sh[10]
-    buf[(r0 + 11) * B + j] = sh[11]
-
-
-@scalar
-def _get_shared(buf, B, r0, j):
-    return (buf[(r0 + 0) * B + j], buf[(r0 + 1) * B + j], buf[(r0 + 2) * B + j],
-            buf[(r0 + 3) * B + j], buf[(r0 + 4) * B + j], buf[(r0 + 5) * B + j],
-            buf[(r0 + 6) * B + j], buf[(r0 + 7) * B + j], buf[(r0 + 8) * B + j],
-            buf[(r0 + 9) * B + j], buf[(r0 + 10) * B + j], buf[(r0 + 11) * B + j])
-
-
 def _slots(mask):
     slots, j = [], 0
     for k in range(N_GREEKS):
@@ -429,20 +362,17 @@ def _slots(mask):
     return tuple(slots), j
 
 
-# The loops index with unsigned integers wherever the index is not a prange index:
-# numba's negative-index wraparound on a signed index turns contiguous loads and
-# stores into a select per element and keeps the loop from vectorising.
-
 @functools.lru_cache(maxsize=None)
 def _kernel(model, mask, direct=None, serial=False):
-    """The loop specialised to one model and one mask (compiled on first use)."""
-    sl, nsel = _slots(mask)
-    B = _BLOCK
-    deco = serial_loop if serial else loop  # serial: called per block by kernel/sweep.py
-    if direct is None:
-        direct = nsel <= _DIRECT_MAX
+    """The loop specialised to one model and one mask (compiled on first use).
 
-    if model == "black76" and direct:
+    ``serial``: a single-threaded loop (kernel/sweep.py calls it per block).  ``direct`` is
+    accepted for compatibility and ignored: there is one loop shape.
+    """
+    sl, _ = _slots(mask)
+    deco = serial_loop if serial else loop
+
+    if model == "black76":
         @deco
         def kern(F, K, T, D, vol, cp, out, status):
             for i in prange(F.shape[0]):
@@ -452,71 +382,13 @@ def _kernel(model, mask, direct=None, serial=False):
                 status[i] = st
         return kern
 
-    r0 = nsel + 1     # first scratch row of the shared intermediates
-    nbuf = r0 + _N_SHARED + 1
-
-    if model == "black76":
-        @deco
-        def kern(F, K, T, D, vol, cp, out, status):
-            n = F.shape[0]
-            nblk = (n + B - 1) // B
-            ntask = min(nblk, _MAX_TASKS)
-            for task in prange(ntask):
-                buf = np.empty(nbuf * B)
-                for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
-                    start = blk * B
-                    cnt = min(B, n - start)
-                    for j in range(cnt):        # pass 1: the intermediates
-                        jj = np.uint64(j)
-                        st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp,
-                                                        np.uint64(start + j))
-                        _put_shared(buf, B, r0, jj, _shared(f, k, tt, d, v, w))
-                        buf[nsel * B + jj] = float(st)
-                    for j in range(cnt):        # pass 2: the requested Greeks
-                        jj = np.uint64(j)
-                        i = np.uint64(start + j)
-                        d = D[i]
-                        g = _from_shared(K[i], T[i], d, d, F[i], 0.0, vol[i], float(cp[i]),
-                                         False, _get_shared(buf, B, r0, jj))
-                        _store_flat(buf, B, jj, g, buf[nsel * B + jj] == 0.0, sl)
-                    _flush(buf, B, nsel, out, status, start, cnt)
-        return kern
-
-    if direct:
-        @deco
-        def kern(spot, K, T, D, q, vol, cp, out, status):
-            for i in prange(spot.shape[0]):
-                st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
-                g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
-                _store(out, i, g, st == S.OK, sl)
-                status[i] = st
-        return kern
-
     @deco
     def kern(spot, K, T, D, q, vol, cp, out, status):
-        n = spot.shape[0]
-        nblk = (n + B - 1) // B
-        ntask = min(nblk, _MAX_TASKS)
-        for task in prange(ntask):
-            buf = np.empty(nbuf * B)
-            for blk in range(task * nblk // ntask, (task + 1) * nblk // ntask):
-                start = blk * B
-                cnt = min(B, n - start)
-                for j in range(cnt):            # pass 1: the intermediates
-                    jj = np.uint64(j)
-                    st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp,
-                                                               np.uint64(start + j))
-                    _put_shared(buf, B, r0, jj, _shared(f, k, tt, d, v, w))
-                    buf[(r0 + _N_SHARED) * B + jj] = dq
-                    buf[nsel * B + jj] = float(st)
-                for j in range(cnt):            # pass 2: the requested Greeks
-                    jj = np.uint64(j)
-                    i = np.uint64(start + j)
-                    g = _from_shared(K[i], T[i], D[i], buf[(r0 + _N_SHARED) * B + jj], spot[i],
-                                     q[i], vol[i], float(cp[i]), True,
-                                     _get_shared(buf, B, r0, jj))
-                    _store_flat(buf, B, jj, g, buf[nsel * B + jj] == 0.0, sl)
-                _flush(buf, B, nsel, out, status, start, cnt)
+        for i in prange(spot.shape[0]):
+            st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
+            g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
+            _store(out, i, g, st == S.OK, sl)
+            status[i] = st
     return kern
 
 
