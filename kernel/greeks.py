@@ -60,7 +60,8 @@ Limits (all with status ok, no NaN):
   At F == K exactly the Greeks are the limits as vol -> 0+: delta = w Dq / 2,
   vega = A sqrt(T) / sqrt(2 pi), vanna = vega / (2 U), volga = 0, ultima = -vega T / 4,
   and gamma, dual_gamma, speed (-), zomma (-), color are infinite, as is charm when b != 0.
-* Huge total vol (s is capped at 1e100; beyond it every phi term is exactly 0 anyway).
+* T -> 0 (T > 0) behaves as vol -> 0: only s = vol sqrt(T) matters (T <= 0 is status
+  expired).  Huge total vol: s is capped at 1e100 (beyond, every phi term is exactly 0).
 Greeks smaller than about 1e-300 of their natural scale may underflow to 0.
 
 Accuracy

@@ -549,8 +549,8 @@ def test_desk_scale_follows_one_rule():
 
 @pytest.mark.parametrize("model", ["black76", "bsm"])
 def test_a_few_greeks_equal_the_same_rows_of_all_greeks(model):
-    # the specialised loop for a subset (stored straight into out) against the full one
-    # (stored through the scratch blocks): same values, bit for bit
+    # the loop specialised to a subset against the one for all Greeks: same values, bit for
+    # bit (unrequested Greeks are compiled away, not computed and dropped)
     rows = make_rows(model, 1000, 41)
     full, st = run(model, rows)
     few, st2 = run(model, rows, FEW)
@@ -596,8 +596,8 @@ def test_out_and_status_are_checked_before_the_loop_runs():
 
 @pytest.mark.parametrize("model", ["black76", "bsm"])
 def test_batch_size_and_offset_do_not_change_results(model):
-    # vector bodies, scalar remainders, block edges (128 rows), misaligned starts and an
-    # empty batch give the same bits for the same row
+    # vector bodies, scalar remainders, chunk edges, misaligned starts and an empty batch
+    # give the same bits for the same row
     rows = make_rows(model, 20000, 61)
     full, st = run(model, rows)
     for off, n in ((0, 0), (0, 1), (0, 127), (0, 129), (0, 257), (1, 19999), (3, 19997),
