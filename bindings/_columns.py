@@ -22,6 +22,7 @@ Logical inputs and the default column names (any of them can be remapped with
 from __future__ import annotations
 
 import datetime as _dt
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -57,7 +58,7 @@ class ColumnPlan:
 
     model: str
     source: dict = field(default_factory=dict)   # logical name -> source column name
-    as_of_value: object = None                    # scalar as_of (int64 ns), if given
+    as_of_value: object = None                    # scalar as_of (seconds, ns), if given
     quote: str = "none"                           # "premium", "bid_ask" or "none"
 
     # ------------------------------------------------------------------ building
@@ -65,6 +66,9 @@ class ColumnPlan:
     def build(cls, schema: pa.Schema, model: str, columns: dict | None, *, need_vol: bool,
               need_quote: bool, as_of=None) -> "ColumnPlan":
         model = check_model(model)
+        if columns is not None and not isinstance(columns, Mapping):
+            raise TypeError("columns= must be a dict of {our input name: your column name}, "
+                            f"got {type(columns).__name__}")
         columns = dict(columns or {})
         for key, value in columns.items():
             if key not in KNOWN_NAMES:
@@ -108,9 +112,11 @@ class ColumnPlan:
         if present("expiry") and ("expiry" in columns or not present("expiry_years")):
             require("expiry")
             if isinstance(as_of, str) and as_of in names:
+                if as_of in dupes:
+                    raise ValueError(f"column {as_of!r} appears more than once in the input")
                 plan.source["as_of"] = as_of
             elif as_of is not None:
-                plan.as_of_value = _scalar_ns(as_of)
+                plan.as_of_value = _scalar_time(as_of)
             else:
                 require("as_of", "an 'expiry' column (give as_of= a time or a column)")
         else:
@@ -141,18 +147,19 @@ class ColumnPlan:
 
     def _check_types(self, schema: pa.Schema) -> None:
         for logical, col in self.source.items():
-            t = schema.field(col).type
-            if pa.types.is_dictionary(t):
-                t = t.value_type
+            t = _value_type(schema.field(col).type)
+            if pa.types.is_null(t):
+                continue  # an all-null column is missing data: every row gets a status
             if logical == "is_call":
-                ok = pa.types.is_boolean(t) or pa.types.is_string(t) or pa.types.is_large_string(t)
+                ok = (pa.types.is_boolean(t) or pa.types.is_string(t)
+                      or pa.types.is_large_string(t) or _is_string_view(t))
                 want = "bool or strings call/put/C/P"
             elif logical in ("expiry", "as_of"):
                 ok = pa.types.is_timestamp(t) or pa.types.is_date(t)
                 want = "a timestamp or date"
             else:
                 ok = (pa.types.is_floating(t) or pa.types.is_integer(t)
-                      or pa.types.is_decimal(t) or pa.types.is_null(t))
+                      or pa.types.is_decimal(t))
                 want = "numeric"
             if not ok:
                 raise TypeError(f"column {col!r} ({logical}) must be {want}, got {t}")
@@ -167,16 +174,13 @@ class ColumnPlan:
     def expiry_years(self, batch) -> np.ndarray:
         if "expiry_years" in self.source:
             return self.floats(batch, "expiry_years")
-        exp_ns, valid = _to_ns(batch.column(self.source["expiry"]))
+        exp_s, exp_ns, valid = _to_seconds(batch.column(self.source["expiry"]))
         if self.as_of_value is not None:
-            ref = np.int64(self.as_of_value)
+            ref_s, ref_ns = (np.int64(v) for v in self.as_of_value)
         else:
-            ref, ref_valid = _to_ns(batch.column(self.source["as_of"]))
+            ref_s, ref_ns, ref_valid = _to_seconds(batch.column(self.source["as_of"]))
             valid = valid & ref_valid
-        # subtract in integer nanoseconds, then convert: no loss for any date range
-        years = (exp_ns - ref).astype(np.float64) / _NS_PER_YEAR
-        years[~valid] = np.nan
-        return _readonly(years)
+        return _readonly(_years_between(exp_s, exp_ns, ref_s, ref_ns, valid))
 
     def discount(self, batch, T: np.ndarray) -> np.ndarray:
         if "discount" in self.source:
@@ -194,9 +198,29 @@ class ColumnPlan:
         return _to_call_put(batch.column(self.source["is_call"]))
 
 
+_is_string_view = getattr(pa.types, "is_string_view", lambda t: False)  # pyarrow >= 16
+
+
+def _value_type(t: pa.DataType) -> pa.DataType:
+    """The type of the values behind dictionary and run-end encodings."""
+    while pa.types.is_dictionary(t) or pa.types.is_run_end_encoded(t):
+        t = t.value_type
+    return t
+
+
+def _decoded(arr: pa.Array) -> pa.Array:
+    """The plain array behind dictionary and run-end encodings (no copy when plain)."""
+    while True:
+        if pa.types.is_dictionary(arr.type):
+            arr = arr.dictionary_decode()
+        elif pa.types.is_run_end_encoded(arr.type):
+            arr = pc.run_end_decode(arr)
+        else:
+            return arr
+
+
 def _to_float64(arr: pa.Array) -> np.ndarray:
-    if pa.types.is_dictionary(arr.type):
-        arr = arr.dictionary_decode()
+    arr = _decoded(arr)
     if arr.type != pa.float64():
         arr = pc.cast(arr, pa.float64(), safe=False)
     if arr.null_count:
@@ -204,20 +228,54 @@ def _to_float64(arr: pa.Array) -> np.ndarray:
     return _readonly(arr.to_numpy(zero_copy_only=False))
 
 
-def _to_ns(arr: pa.Array):
-    """Timestamps/dates as (int64 nanoseconds since the epoch, validity mask)."""
-    if pa.types.is_dictionary(arr.type):
-        arr = arr.dictionary_decode()
-    if pa.types.is_date(arr.type):
-        arr = pc.cast(arr, pa.timestamp("s"))
-    tz = getattr(arr.type, "tz", None)
-    arr = pc.cast(arr, pa.timestamp("ns", tz=tz)).cast(pa.int64())
-    valid = pc.is_valid(arr).to_numpy(zero_copy_only=False)
-    return pc.fill_null(arr, 0).to_numpy(zero_copy_only=False), valid
+_PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
+_SAFE_SECONDS = 2 ** 62  # below this magnitude, a difference of seconds fits in int64
 
 
-def _scalar_ns(value) -> int:
-    """A scalar as_of (datetime, date, numpy datetime64, ISO string, Arrow scalar) in ns."""
+def _to_seconds(arr: pa.Array):
+    """Timestamps/dates as (int64 seconds, int64 nanoseconds in [0, 1e9), validity).
+
+    Split into whole seconds and a remainder so that no date Arrow can hold overflows
+    (a cast to timestamp[ns] fails beyond the years 1677-2262).
+    """
+    arr = _decoded(arr)
+    n = len(arr)
+    if pa.types.is_null(arr.type):
+        zeros = np.zeros(n, np.int64)
+        return zeros, zeros, np.zeros(n, bool)
+    valid = np.asarray(pc.is_valid(arr).to_numpy(zero_copy_only=False), bool)
+    if pa.types.is_date32(arr.type):
+        days = pc.fill_null(arr.cast(pa.int32()), 0).to_numpy(zero_copy_only=False)
+        return days.astype(np.int64) * 86400, np.zeros(n, np.int64), valid
+    per = 1_000 if pa.types.is_date64(arr.type) else _PER_SECOND[arr.type.unit]
+    v = pc.fill_null(arr.cast(pa.int64()), 0).to_numpy(zero_copy_only=False)
+    secs, rem = np.divmod(v, per)
+    return secs, rem * (1_000_000_000 // per), valid
+
+
+def _years_between(exp_s, exp_ns, ref_s, ref_ns, valid) -> np.ndarray:
+    """(expiry - reference) in years, ACT/365F, NaN where either time is missing.
+
+    In integer nanoseconds when the difference fits in int64 (exact; any span under 292
+    years), else in float64 (relative error ~1e-16, for spans of centuries).
+    """
+    exp_s, exp_ns, ref_s, ref_ns = np.broadcast_arrays(exp_s, exp_ns, ref_s, ref_ns)
+    small = (np.abs(exp_s) < _SAFE_SECONDS) & (np.abs(ref_s) < _SAFE_SECONDS)
+    dsec = np.where(small, exp_s, 0) - np.where(small, ref_s, 0)
+    fits = small & (np.abs(dsec) < 9_000_000_000)
+    dns = np.where(fits, dsec, 0) * 1_000_000_000 + (exp_ns - ref_ns)
+    years = dns.astype(np.float64) / _NS_PER_YEAR
+    far = ~fits
+    if far.any():
+        wide = (exp_s[far].astype(np.float64) - ref_s[far].astype(np.float64)) * 1e9
+        years[far] = (wide + (exp_ns[far] - ref_ns[far])) / _NS_PER_YEAR
+    years[~valid] = np.nan
+    return years
+
+
+def _scalar_time(value) -> tuple[int, int]:
+    """A scalar as_of (datetime, date, numpy datetime64, ISO string, Arrow scalar) as
+    (seconds since the epoch, nanoseconds in [0, 1e9)); naive times are UTC."""
     if isinstance(value, pa.Scalar):
         value = value.as_py()
     if isinstance(value, str):
@@ -225,17 +283,34 @@ def _scalar_ns(value) -> int:
             value = np.datetime64(value)
         except ValueError:
             raise ValueError(f"as_of={value!r} is neither a column nor a timestamp") from None
-    if isinstance(value, _dt.datetime) and value.tzinfo is not None:
-        value = value.astimezone(_dt.timezone.utc).replace(tzinfo=None)
-    if isinstance(value, (_dt.date, np.datetime64)):
-        return int(np.datetime64(value, "ns").astype(np.int64))
+    if isinstance(value, _dt.datetime):
+        if value.tzinfo is not None:
+            value = value.astimezone(_dt.timezone.utc).replace(tzinfo=None)
+        delta = value - _dt.datetime(1970, 1, 1)
+        return delta.days * 86400 + delta.seconds, delta.microseconds * 1000
+    if isinstance(value, _dt.date):
+        return (value - _dt.date(1970, 1, 1)).days * 86400, 0
+    if isinstance(value, np.datetime64):
+        if np.isnat(value):
+            raise ValueError("as_of is NaT (not a time)")
+        unit, count = np.datetime_data(value.dtype)
+        if unit in ("Y", "M", "W", "D", "h", "m", "generic"):
+            return int(value.astype("datetime64[s]").astype(np.int64)), 0
+        ticks = int(value.astype(np.int64)) * count
+        per = {"s": 1, "ms": 10 ** 3, "us": 10 ** 6, "ns": 10 ** 9, "ps": 10 ** 12,
+               "fs": 10 ** 15, "as": 10 ** 18}[unit]
+        secs, rem = divmod(ticks, per)
+        return secs, rem * 10 ** 9 // per
     raise TypeError(f"as_of must be a timestamp, date or column name, got {type(value).__name__}")
 
 
 def _to_call_put(arr: pa.Array) -> np.ndarray:
     """+1 call, -1 put, 0 for null or an unrecognised word (gives status missing_input)."""
-    if pa.types.is_dictionary(arr.type):
-        arr = arr.dictionary_decode()
+    arr = _decoded(arr)
+    if pa.types.is_null(arr.type):
+        return _readonly(np.zeros(len(arr), np.int8))
+    if _is_string_view(arr.type):
+        arr = arr.cast(pa.large_string())
     if pa.types.is_boolean(arr.type):
         cp = pc.if_else(arr, pa.scalar(1, pa.int8()), pa.scalar(-1, pa.int8()))
     else:

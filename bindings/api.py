@@ -8,6 +8,10 @@ are processed batch by batch, never concatenated.  Schema problems raise ``Value
 
 from __future__ import annotations
 
+import contextlib
+import threading
+
+import numba
 import numpy as np
 import pyarrow as pa
 
@@ -22,6 +26,45 @@ from ._input import as_batches
 from ._output import append, check_no_clash, float_column, output_schema, status_column
 
 
+_LAUNCH_LOCK = threading.Lock()
+_serialise = None  # unknown until the first launch: then True for a layer unsafe in threads
+
+
+@contextlib.contextmanager
+def _kernel_launch():
+    """Serialise kernel launches when numba's threading layer is not thread-safe.
+
+    ``omp`` and ``tbb`` take parallel launches from several Python threads; ``workqueue``
+    aborts the process.  The layer is known only after the first parallel launch, so that
+    one is made under the lock.
+    """
+    global _serialise
+    if _serialise is False:
+        yield
+        return
+    with _LAUNCH_LOCK:
+        yield
+        if _serialise is None:
+            try:
+                _serialise = numba.threading_layer() == "workqueue"
+            except ValueError:  # no parallel kernel ran (e.g. an empty batch)
+                pass
+
+
+def _finite_or_out_of_range(values: np.ndarray, st: np.ndarray) -> None:
+    """A row whose value is not a finite double (overflow) gets status out_of_range."""
+    bad = (st == 0) & ~np.isfinite(values)
+    if bad.any():
+        st[bad] = _status.OUT_OF_RANGE
+        values[bad] = np.nan
+
+
+def _ok_column(values: np.ndarray, ok: np.ndarray) -> pa.Array:
+    """A secondary output (Greek, spread uncertainty): null where the row is not ok, and
+    null where its value is not a finite double (an infinite limit, an overflow)."""
+    return float_column(values, ok & np.isfinite(values))
+
+
 def _run(data, plan_kwargs, outputs, compute) -> pa.Table:
     """Shared driver: plan the columns once, then ``compute(plan, batch)`` per batch.
 
@@ -33,7 +76,11 @@ def _run(data, plan_kwargs, outputs, compute) -> pa.Table:
         outputs = outputs(plan)
     check_no_clash(schema, outputs)
     out_schema = output_schema(schema, outputs)
-    out = [append(b, out_schema, compute(plan, b)) for b in batches]
+    out = []
+    for b in batches:
+        with _kernel_launch():
+            cols = compute(plan, b)
+        out.append(append(b, out_schema, cols))
     return pa.Table.from_batches(out, schema=out_schema)
 
 
@@ -62,6 +109,7 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
             _black.bsm_price(und, K, T, D, q, vol, cp, p, st)
         else:
             _black.black76_price(und, K, T, D, vol, cp, p, st)
+        _finite_or_out_of_range(p, st)
         return {"price": float_column(p, st == 0), "status": status_column(st)}
 
     return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
@@ -79,6 +127,7 @@ def _iv_kernel(plan, premium, und, K, T, D, q, cp):
         _implied.bsm_iv(premium, und, K, T, D, q, cp, iv, st)
     else:
         _implied.black76_iv(premium, und, K, T, D, cp, iv, st)
+    _finite_or_out_of_range(iv, st)
     return iv, st
 
 
@@ -110,6 +159,7 @@ def _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask):
         _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
     else:
         _sweep.black76_sweep(premium, und, K, T, D, cp, mask, iv, out, st)
+    _finite_or_out_of_range(iv, st)
     return iv, out, st
 
 
@@ -130,9 +180,7 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
         iv, g, st = solve(plan.floats(batch, "premium"))
         return {"iv": float_column(iv, st == 0)}, g, st
     bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
-    with np.errstate(invalid="ignore"):
-        mid = 0.5 * (bid + ask)
-        half_spread = 0.5 * (ask - bid)
+    mid, half_spread = _mid_and_half_spread(bid, ask)
     iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
     iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
     iv_m, g, st_m = solve(mid)
@@ -145,9 +193,23 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
         unc = half_spread / vega
     ok = st_m == 0
     cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
-            "iv": float_column(iv_m, ok), "iv_spread_uncertainty": float_column(unc, ok),
+            "iv": float_column(iv_m, ok), "iv_spread_uncertainty": _ok_column(unc, ok),
             "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
     return cols, g, st_m
+
+
+def _mid_and_half_spread(bid, ask):
+    """0.5 (bid + ask) and 0.5 (ask - bid), without overflow for quotes near 1.8e308."""
+    with np.errstate(all="ignore"):
+        mid = 0.5 * (bid + ask)
+        half_spread = 0.5 * (ask - bid)
+        over = np.isinf(mid) & np.isfinite(bid) & np.isfinite(ask)
+        if over.any():
+            mid[over] = 0.5 * bid[over] + 0.5 * ask[over]
+        over = np.isinf(half_spread) & np.isfinite(bid) & np.isfinite(ask)
+        if over.any():
+            half_spread[over] = 0.5 * ask[over] - 0.5 * bid[over]
+    return mid, half_spread
 
 
 def _iv_outputs(plan):
@@ -217,7 +279,7 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
         out, st = _greek_values(plan, names, und, K, T, D, q, plan.floats(batch, "vol"), cp,
                                 units)
         ok = st == 0
-        cols = {name: float_column(out[j], ok) for j, name in enumerate(names)}
+        cols = {name: _ok_column(out[j], ok) for j, name in enumerate(names)}
         cols["status"] = status_column(st)
         return cols
 
@@ -243,7 +305,7 @@ def sweep(data, model: str = "bsm", which=None, units: str = "raw",
             g *= _greeks.desk_factors(_greeks.greek_mask(names, plan.model))[:, None]
         ok = st == 0
         for j, name in enumerate(names):
-            cols[name] = float_column(g[j], ok)
+            cols[name] = _ok_column(g[j], ok)
         cols["status"] = status_column(st)
         return cols
 
