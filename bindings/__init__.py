@@ -4,7 +4,8 @@ Outputs are model values, not investment advice.
 """
 
 from .api import greeks, implied_vol, price, sweep
+from .backfill import backfill
 from volsweep.kernel.greeks import GREEK_NAMES
 
-__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price", "sweep"]
+__all__ = ["GREEK_NAMES", "backfill", "greeks", "implied_vol", "price", "sweep"]
 __version__ = "0.1.0"

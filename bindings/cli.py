@@ -3,8 +3,15 @@
 Commands:
   demo                     build a synthetic snapshot in memory, run it, print a summary
   gen -n N -o FILE         write a synthetic snapshot to Parquet
-  price IN -o OUT          price every row of a Parquet file (needs a vol column)
+  price IN -o OUT          price every row of a file (needs a vol column)
+  sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
+  backfill SRC DST         sweep every partition of a dataset on Dask, resumably
   bench                    run the benchmark report
+
+IN may be a Parquet file, a folder of Parquet files (hive partitions such as
+date=2031-03-14/ add their key as a column), an Arrow IPC file or stream, or a .csv file.
+Inputs are streamed in batches (memory stays bounded whatever the size); OUT is Parquet,
+written to a temporary file and renamed on success, so a failure leaves no partial OUT.
 """
 
 from __future__ import annotations
@@ -12,6 +19,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import textwrap
 import time
 from collections import Counter
 
@@ -34,48 +42,33 @@ def _mapping(pairs) -> dict:
 
 
 def _status_summary(tables) -> str:
-    counts = Counter()
+    from .stream import count_statuses, status_table
+
+    counts = {}
     for t in tables:
-        vc = t.column("status").combine_chunks().dictionary_decode().value_counts()
-        for item in vc:
-            counts[item["values"].as_py()] += item["counts"].as_py()
-    total = sum(counts.values()) or 1
-    return "\n".join(f"  {name:<20s}{n:>12,d}  {100.0 * n / total:6.2f}%"
-                     for name, n in counts.most_common())
+        count_statuses(t.select(["status"]), counts)
+    return status_table(counts)
 
 
-def _stream_parquet(src: str, dst: str, overwrite: bool, transform) -> tuple[int, float, list]:
-    """Read ``src`` batch by batch, write ``transform(batch)`` to ``dst`` atomically."""
-    if os.path.exists(dst) and not overwrite:
-        raise CliError(f"{dst} exists (use --overwrite)")
-    try:
-        reader = pq.ParquetFile(src)
-    except (OSError, pa.ArrowException) as exc:
-        raise CliError(f"cannot read {src}: {exc}") from None
-    tmp = f"{dst}.tmp-{os.getpid()}"
-    writer = None
-    rows, statuses = 0, []
-    t0 = time.perf_counter()
-    try:
-        for batch in reader.iter_batches(batch_size=1 << 20):
-            out = transform(pa.Table.from_batches([batch]))
-            if writer is None:
-                writer = pq.ParquetWriter(tmp, out.schema)
-            writer.write_table(out)
-            statuses.append(out.select(["status"]))
-            rows += out.num_rows
-        if writer is None:  # empty file: still write the output schema
-            out = transform(reader.schema_arrow.empty_table())
-            writer = pq.ParquetWriter(tmp, out.schema)
-        writer.close()
-        writer = None
-        os.replace(tmp, dst)
-    finally:
-        if writer is not None:
-            writer.close()
-        if os.path.exists(tmp):
-            os.remove(tmp)
-    return rows, time.perf_counter() - t0, statuses
+def _open(args):
+    from .stream import open_input
+
+    if args.batch_rows < 1:
+        raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
+    return open_input(args.input, args.batch_rows)
+
+
+def _stream(args, source, transform, out_schema, verb: str) -> int:
+    from .stream import Progress, run, status_table
+
+    progress = Progress(source.num_rows)
+    res = run(source, args.output, transform, out_schema, overwrite=args.overwrite,
+              progress=progress)
+    rate = res.rows / res.seconds if res.seconds > 0 else 0.0
+    print(f"{verb} {res.rows:,d} rows in {res.seconds:.2f} s ({rate / 1e6:.2f} M rows/s) "
+          f"-> {args.output}", file=sys.stderr)
+    print(status_table(res.statuses), file=sys.stderr)
+    return 0
 
 
 def cmd_demo(args) -> int:
@@ -123,11 +116,78 @@ def cmd_price(args) -> int:
     import volsweep
 
     cols = _mapping(args.map)
-    rows, dt, statuses = _stream_parquet(
-        args.input, args.output, args.overwrite,
-        lambda t: volsweep.price(t, model=args.model, columns=cols, as_of=args.as_of))
-    print(f"priced {rows:,d} rows in {dt:.2f} s -> {args.output}", file=sys.stderr)
-    print(_status_summary(statuses), file=sys.stderr)
+    source = _open(args)
+
+    def transform(batch):
+        return volsweep.price(batch, model=args.model, columns=cols, as_of=args.as_of)
+
+    out_schema = transform(source.schema.empty_table()).schema
+    return _stream(args, source, transform, out_schema, "priced")
+
+
+def _greeks_arg(text: str):
+    """--greeks all | none | delta,vega,... -> the ``which`` of volsweep.sweep."""
+    words = [w.strip() for w in text.split(",") if w.strip()]
+    if words == ["all"]:
+        return None
+    if words == ["none"]:
+        return []
+    if not words or "all" in words or "none" in words:
+        raise CliError(f"--greeks expects all, none or a comma-separated list, got {text!r}")
+    return words
+
+
+def _keep_arg(text: str):
+    words = [w.strip() for w in text.split(",") if w.strip()]
+    if words == ["all"]:
+        return None
+    if words == ["none"]:
+        return []
+    if not words:
+        raise CliError("--keep-columns expects all, none or a comma-separated list")
+    return words
+
+
+def _sweep_options(args) -> dict:
+    which = _greeks_arg(args.greeks)
+    # with no Greeks the units do not matter; pass raw (see the report on api.sweep)
+    units = "raw" if which == [] else args.units
+    return dict(model=args.model, which=which, units=units, columns=_mapping(args.map),
+                as_of=args.as_of, quotes=args.quotes, keep=_keep_arg(args.keep_columns))
+
+
+def cmd_sweep(args) -> int:
+    from .stream import SweepPlan
+
+    options = _sweep_options(args)
+    source = _open(args)
+    plan = SweepPlan.build(source.schema, **options)
+    return _stream(args, source, plan.transform, plan.out_schema, "swept")
+
+
+def cmd_backfill(args) -> int:
+    try:
+        import distributed  # noqa: F401
+    except ImportError:
+        raise CliError("volsweep backfill needs Dask: pip install 'volsweep[dask]'") from None
+    from .backfill import backfill
+    from .stream import Progress, status_table
+
+    if args.batch_rows < 1:
+        raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
+    if args.workers is not None and args.workers < 1:
+        raise CliError(f"--workers must be >= 1, got {args.workers}")
+    from .backfill import find_partitions
+
+    total = len(find_partitions(args.src))
+    res = backfill(args.src, args.dst, scheduler=args.scheduler, n_workers=args.workers,
+                   batch_rows=args.batch_rows, progress=Progress(total, unit="partitions"),
+                   **_sweep_options(args))
+    print(f"backfill: {res.partitions:,d} partitions ({res.written:,d} written, "
+          f"{res.skipped:,d} already complete), {res.rows_written:,d} rows written in "
+          f"{res.seconds:.1f} s -> {args.dst}", file=sys.stderr)
+    if res.statuses:
+        print(status_table(res.statuses), file=sys.stderr)
     return 0
 
 
@@ -140,6 +200,59 @@ def cmd_bench(args) -> int:
     from benchmarks import report
 
     return report.main(rows=args.rows)
+
+
+_SWEEP_EPILOG = """\
+quotes: 'auto' inverts 'premium' if the input has it, else 'bid' and 'ask' (then the
+  outputs are iv_bid, iv_ask, iv of the mid, iv_spread_uncertainty and per-side statuses);
+  when the input has both, choose one with --quotes premium or --quotes bid-ask.
+examples:
+  volsweep sweep snap.parquet -o vols.parquet --quotes premium --greeks delta,vega
+  volsweep sweep history/ -o vols.parquet --quotes bid-ask --keep-columns underlying,strike
+  volsweep sweep quotes.csv -o vols.parquet --map strike=K --map premium=mid --units desk
+Outputs are model values, not investment advice.
+"""
+
+
+def _default_batch_rows() -> int:
+    from .stream import DEFAULT_BATCH_ROWS
+
+    return DEFAULT_BATCH_ROWS
+
+
+def _io_args(p) -> None:
+    p.add_argument("input", metavar="IN",
+                   help="Parquet file or folder, Arrow IPC file or stream, or .csv file")
+    p.add_argument("-o", "--output", required=True, metavar="OUT", help="Parquet file to write")
+    p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
+    p.add_argument("--batch-rows", type=int, default=_default_batch_rows(), metavar="N",
+                   help="rows per batch: bounds memory (default: %(default)s)")
+
+
+def _map_args(p) -> None:
+    p.add_argument("--map", action="append", metavar="OURS=THEIRS",
+                   help="use column THEIRS for input OURS, e.g. strike=K (repeatable)")
+    p.add_argument("--as-of", help="valuation time when expiries are timestamps (a time, or "
+                   "the name of a column)")
+
+
+def _sweep_args(p) -> None:
+    import volsweep
+
+    p.add_argument("--model", default="bsm", choices=["bsm", "black76"],
+                   help="bsm: on spot with div_yield; black76: on forward (default: bsm)")
+    p.add_argument("--quotes", default="auto", choices=["auto", "premium", "bid-ask"],
+                   help="which quote to invert (default: auto)")
+    p.add_argument("--greeks", default="all", metavar="LIST",
+                   help="all, none, or a comma-separated list of: "
+                   f"{', '.join(volsweep.GREEK_NAMES)} (default: all)")
+    p.add_argument("--units", default="raw", choices=["raw", "desk"],
+                   help="Greeks per 1.00 of vol/rate and per year (raw), or per vol point, "
+                   "per 1%% and per day (desk)")
+    p.add_argument("--keep-columns", default="all", metavar="LIST",
+                   help="input columns copied to the output: all, none, or a "
+                   "comma-separated list (default: all)")
+    _map_args(p)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -160,15 +273,47 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--overwrite", action="store_true")
     g.set_defaults(func=cmd_gen)
 
-    pr = sub.add_parser("price", help="price every row of a Parquet file")
-    pr.add_argument("input")
-    pr.add_argument("-o", "--output", required=True)
+    pr = sub.add_parser("price", help="price every row of a file (needs a vol column)",
+                        description="Price every row of IN (Parquet file or folder, Arrow IPC, "
+                        "CSV) into the Parquet file OUT, streaming batch by batch.")
+    _io_args(pr)
     pr.add_argument("--model", default="bsm", choices=["bsm", "black76"])
-    pr.add_argument("--map", action="append", metavar="OURS=THEIRS",
-                    help="use column THEIRS for input OURS (repeatable)")
-    pr.add_argument("--as-of", help="valuation time when expiries are timestamps")
-    pr.add_argument("--overwrite", action="store_true")
+    _map_args(pr)
     pr.set_defaults(func=cmd_price)
+
+    sw = sub.add_parser(
+        "sweep", help="implied vols and Greeks for every row of a file or dataset",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=textwrap.fill(
+            "Invert every quote of IN into an implied volatility and compute the Greeks at "
+            "that vol, streaming batch by batch with bounded memory, into the Parquet file "
+            "OUT (written to a temporary file, renamed on success).  OUT has every input "
+            "row, in order, every input column (see --keep-columns), then the outputs.", 88),
+        epilog=_SWEEP_EPILOG)
+    _io_args(sw)
+    _sweep_args(sw)
+    sw.set_defaults(func=cmd_sweep)
+
+    bf = sub.add_parser(
+        "backfill", help="sweep every partition of a dataset on Dask, resumably",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=textwrap.fill(
+            "Sweep every partition of the Parquet dataset SRC (leaf folders such as "
+            "date=2031-03-14/) into DST/<same folder>/part-0.parquet, one Dask task per "
+            "partition.  Partitions already complete in DST are skipped: a re-run after a "
+            "crash resumes and never duplicates rows.  Needs the dask extra.", 88),
+        epilog=_SWEEP_EPILOG)
+    bf.add_argument("src", help="partitioned Parquet dataset folder")
+    bf.add_argument("dst", help="output dataset folder (created if missing)")
+    bf.add_argument("--scheduler", metavar="ADDRESS",
+                    help="address of a running Dask scheduler (default: a local cluster of "
+                    "one single-threaded worker process per core)")
+    bf.add_argument("--workers", type=int, metavar="N",
+                    help="worker processes of the local cluster (default: one per core)")
+    bf.add_argument("--batch-rows", type=int, default=_default_batch_rows(), metavar="N",
+                    help="rows per batch (default: %(default)s)")
+    _sweep_args(bf)
+    bf.set_defaults(func=cmd_backfill)
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)
@@ -183,8 +328,9 @@ def main(argv=None) -> int:
     except CliError as exc:
         print(f"volsweep: error: {exc}", file=sys.stderr)
         return 2
-    except (ValueError, TypeError) as exc:
-        print(f"volsweep: error: {exc}", file=sys.stderr)
+    except (ValueError, TypeError, OSError) as exc:
+        text = (str(exc).strip() or type(exc).__name__).splitlines()[0]
+        print(f"volsweep: error: {text}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("volsweep: interrupted", file=sys.stderr)

@@ -1,0 +1,265 @@
+"""Historical backfill on Dask: every partition of a Parquet dataset, swept in parallel.
+
+``backfill(src, dst)`` finds the partitions of ``src`` (the leaf folders holding data
+files, e.g. hive folders ``date=2031-03-14/``; a flat folder is one partition), runs one
+Dask task per partition, and writes ``dst/<same relative folder>/part-0.parquet``: the
+partition's rows, in order (its files in name order), with implied vols and Greeks.
+
+Commit protocol: a task writes a hidden temporary file in the partition's folder, fsyncs
+it and renames it to ``part-0.parquet``; the rename is the commit.  A partition whose
+``part-0.parquet`` exists with the source's row count is complete and is skipped, so a
+re-run after a crash (or a task Dask runs twice after losing a worker) resumes without
+duplicating anything.  Hidden temporary files left by a killed worker are ignored by
+dataset readers and removed by the next run.
+
+Workers: by default a ``LocalCluster`` with one single-threaded worker process per core,
+started with ``NUMBA_NUM_THREADS=1`` (one kernel thread per worker: no
+oversubscription) and the parent's ``NUMBA_CACHE_DIR`` (compiled kernels are loaded from
+the shared cache, not compiled again).  ``scheduler="tcp://host:8786"`` uses a running
+cluster instead; its workers must see ``src`` and ``dst`` at the same paths, and each
+task caps numba's threads at cores / worker threads.
+
+Dask is imported only here, and only when ``backfill`` is called.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections import Counter
+from dataclasses import dataclass, field
+
+import pyarrow.parquet as pq
+
+from . import stream as _stream
+
+PART_NAME = "part-0.parquet"
+
+
+@dataclass
+class Partition:
+    rel: str                  # folder relative to src ("." for a flat dataset)
+    files: list               # absolute paths of its data files, in read order
+
+
+@dataclass
+class BackfillResult:
+    partitions: int
+    written: int
+    skipped: int
+    rows_written: int
+    rows_skipped: int
+    seconds: float
+    statuses: dict = field(default_factory=dict)
+    workers: list = field(default_factory=list)    # per task: (pid, numba threads, compiled)
+
+    @property
+    def rows(self) -> int:
+        return self.rows_written + self.rows_skipped
+
+
+def find_partitions(src) -> list[Partition]:
+    """Leaf folders of ``src`` holding data files, in lexicographic order."""
+    src = os.path.abspath(os.fspath(src))
+    if not os.path.isdir(src):
+        raise _stream.StreamError(f"cannot read {src}: not a directory (backfill reads a "
+                                  "partitioned dataset folder)")
+    groups: dict[str, list] = {}
+    for path in _stream._data_files(src):
+        groups.setdefault(os.path.relpath(os.path.dirname(path), src), []).append(path)
+    if not groups:
+        raise _stream.StreamError(f"cannot read {src}: no data files in the directory")
+    nested = [r for r in groups if r != "." and any(o != r and o.startswith(r + os.sep)
+                                                    for o in groups)]
+    if nested or ("." in groups and len(groups) > 1):
+        where = nested[0] if nested else "."
+        raise _stream.StreamError(f"cannot read {src}: folder {where!r} holds data files and "
+                                  "sub-folders with data files; partitions must be leaves")
+    return [Partition(rel, files) for rel, files in sorted(groups.items(),
+                                                           key=lambda kv: kv[0].split(os.sep))]
+
+
+def _source_rows(files) -> int | None:
+    try:
+        return sum(pq.read_metadata(f).num_rows for f in files)
+    except Exception:   # not Parquet (IPC, CSV): completeness is the file's existence
+        return None
+
+
+def _complete_rows(target: str, files) -> int | None:
+    """Rows of a committed ``target`` if it is complete for ``files``, else None."""
+    if not os.path.exists(target):
+        return None
+    try:
+        have = pq.read_metadata(target).num_rows
+    except Exception:   # unreadable: redo it (the new file replaces it atomically)
+        return None
+    want = _source_rows(files)
+    return have if want is None or want == have else None
+
+
+def _limit_threads() -> int:
+    """numba threads for this task: ``NUMBA_NUM_THREADS`` when set (1 under our
+    LocalCluster), else cores divided by the worker's threads, so a worker never
+    oversubscribes.  Set per task: numba may have been imported before the variable was."""
+    import numba
+
+    want = os.environ.get("NUMBA_NUM_THREADS", "")
+    if want.isdigit() and int(want) > 0:
+        want = int(want)
+    else:
+        try:
+            from distributed import get_worker
+
+            want = max(1, (os.cpu_count() or 1) // max(1, get_worker().state.nthreads))
+        except Exception:   # not on a worker (a plain call): leave numba's default
+            return numba.get_num_threads()
+    numba.set_num_threads(min(want, numba.config.NUMBA_NUM_THREADS))
+    return numba.get_num_threads()
+
+
+def _misses() -> int:
+    """Compilations so far in this process among volsweep's kernels (cache misses)."""
+    import gc
+
+    from numba.core.registry import CPUDispatcher
+
+    return sum(o.stats.cache_misses.total() for o in gc.get_objects()
+               if isinstance(o, CPUDispatcher)
+               and getattr(o.py_func, "__module__", "").startswith("volsweep.kernel"))
+
+
+def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: int) -> dict:
+    """One task: sweep one partition into ``dst_root/<rel>/part-0.parquet`` (or skip it)."""
+    threads = _limit_threads()
+    out_dir = os.path.normpath(os.path.join(dst_root, part.rel))
+    target = os.path.join(out_dir, PART_NAME)
+    done = _complete_rows(target, part.files)
+    info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0)
+    if done is not None:
+        return dict(info, state="skipped", rows=done, statuses={})
+    os.makedirs(out_dir, exist_ok=True)
+    source = _stream.open_input(part.files[0] if len(part.files) == 1 else out_dir,
+                                batch_rows, files=part.files, partitioning=None)
+    plan = _stream.SweepPlan.build(source.schema, **options)
+    before = _misses()
+    res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True)
+    info["compiled"] = _misses() - before
+    return dict(info, state="written", rows=res.rows, statuses=res.statuses)
+
+
+def _clean_temps(dst_root: str, parts) -> None:
+    for part in parts:
+        for tmp in _stream.stale_temps(os.path.join(dst_root, part.rel, PART_NAME)):
+            try:
+                os.remove(tmp)
+            except FileNotFoundError:
+                pass
+
+
+def worker_environ() -> dict:
+    """Environment for our LocalCluster's worker processes (set before they start)."""
+    env = {"NUMBA_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1",
+           "MKL_NUM_THREADS": "1"}
+    if os.environ.get("NUMBA_CACHE_DIR"):
+        env["NUMBA_CACHE_DIR"] = os.environ["NUMBA_CACHE_DIR"]
+    return env
+
+
+def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as_of=None,
+             quotes="auto", keep=None, scheduler=None, n_workers=None,
+             batch_rows=_stream.DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
+    """Sweep every partition of the dataset ``src`` into the same partitions under ``dst``.
+
+    ``model``, ``which``, ``units``, ``columns``, ``as_of``: as for ``volsweep.sweep``.
+    ``quotes``: ``"auto"``, ``"premium"`` or ``"bid-ask"`` (which quote to invert when the
+    input has both); ``keep``: input columns to copy (None: all).  ``scheduler``: address
+    of a running Dask scheduler, or a ``distributed.Client``; None starts a LocalCluster
+    of ``n_workers`` (default: one per core) single-threaded worker processes.
+    ``progress``: a ``stream.Progress`` counting partitions, or None.
+
+    Returns a ``BackfillResult`` (partitions written and skipped, rows, status counts).
+    Schema problems in the first partition raise before any cluster is started.
+    """
+    t0 = time.perf_counter()
+    src = os.path.abspath(os.fspath(src))
+    dst = os.path.abspath(os.fspath(dst))
+    if dst == src or dst.startswith(src + os.sep):
+        raise _stream.StreamError(f"the output {dst} must not be inside the input {src}")
+    parts = find_partitions(src)
+    options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of,
+                   quotes=quotes, keep=keep)
+    first = _stream.open_input(parts[0].files[0], batch_rows, files=parts[0].files,
+                               partitioning=None)
+    _stream.SweepPlan.build(first.schema, **options)   # schema errors now, not on a worker
+    os.makedirs(dst, exist_ok=True)
+    _clean_temps(dst, parts)
+
+    import distributed   # the optional dependency: only here
+
+    saved = {k: os.environ.get(k) for k in list(worker_environ()) + ["PYTHONHASHSEED"]}
+    results = []
+    try:
+        client, cluster = _connect(distributed, scheduler, n_workers)
+    except BaseException:
+        _restore_environ(saved)
+        raise
+    try:
+        futures = client.map(sweep_partition, parts, dst_root=dst, options=options,
+                             batch_rows=batch_rows, pure=False)
+        for fut in distributed.as_completed(futures):
+            results.append(fut.result())
+            if progress is not None:
+                progress.update(1)
+    finally:
+        if progress is not None:
+            progress.close()
+        if cluster is not None:
+            client.close()
+            cluster.close()
+        elif not isinstance(scheduler, distributed.Client):
+            client.close()
+        _restore_environ(saved)
+    _clean_temps(dst, parts)
+    statuses: dict = {}
+    for r in results:
+        for col, counts in r["statuses"].items():
+            statuses.setdefault(col, Counter()).update(counts)
+    written = [r for r in results if r["state"] == "written"]
+    skipped = [r for r in results if r["state"] == "skipped"]
+    return BackfillResult(
+        partitions=len(parts), written=len(written), skipped=len(skipped),
+        rows_written=sum(r["rows"] for r in written), rows_skipped=sum(r["rows"] for r in skipped),
+        seconds=time.perf_counter() - t0, statuses=statuses,
+        workers=[(r["pid"], r["threads"], r["compiled"]) for r in results])
+
+
+def _connect(distributed, scheduler, n_workers):
+    """(client, cluster we own or None)."""
+    if isinstance(scheduler, distributed.Client):
+        return scheduler, None
+    if scheduler is not None:
+        try:
+            return distributed.Client(scheduler, timeout="10s"), None
+        except (OSError, TimeoutError) as exc:
+            raise _stream.StreamError(f"cannot reach the Dask scheduler at {scheduler}: "
+                                      f"{_stream._one_line(exc)}") from None
+    import dask
+
+    env = worker_environ()
+    n = n_workers or os.cpu_count() or 1
+    # pre-spawn-environ is set before each worker process starts (and again when a nanny
+    # restarts a lost worker), so numba reads NUMBA_NUM_THREADS=1 at import; the nanny
+    # sets it in our own os.environ to do so, which we undo once the cluster is up.
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
+        cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                                           dashboard_address=None, env=env, silence_logs=40)
+    return distributed.Client(cluster), cluster
+
+
+def _restore_environ(saved: dict) -> None:
+    for k, v in saved.items():
+        if v is None:
+            os.environ.pop(k, None)
+        else:
+            os.environ[k] = v
