@@ -90,6 +90,39 @@ def _forward_inputs(plan: ColumnPlan, batch: pa.RecordBatch):
             plan.div_yield(batch) if plan.model == "bsm" else None, plan.call_put(batch))
 
 
+def _input_priority(plan, batch, und, K, T, q, cp, vol, *statuses) -> None:
+    """Restore the documented input-status priority on rows the kernel flagged (in place).
+
+    The kernels see the discount factor e^{-rT}, not the rate: an infinite rate gives D = 0
+    or inf (out_of_range), and an infinite rate or time times a zero gives D = NaN
+    (missing_input).  The README promises missing_input for a null/NaN input and then
+    non_finite_input for a +-inf one (the discount factor excepted: out_of_range).  Only
+    rows that already have a non-ok status can be affected, so only those are examined.
+    """
+    bad = np.flatnonzero(np.logical_or.reduce([st != 0 for st in statuses]))
+    if not len(bad):
+        return
+    raw = [und, K, T]
+    if "rate" in plan.source:
+        raw.append(plan.floats(batch, "rate"))
+    else:
+        raw.append(plan.floats(batch, "discount"))
+    if vol is not None:
+        raw.append(vol)
+    if q is not None:
+        raw.append(q)
+    vals = np.stack([a[bad] for a in raw])
+    missing = np.isnan(vals).any(axis=0) | (cp[bad] == 0)
+    if "rate" not in plan.source:
+        vals[3] = 0.0  # an infinite discount factor is out_of_range, as documented
+    nonfinite = np.isinf(vals).any(axis=0) & ~missing
+    for st in statuses:
+        sub = st[bad]
+        sub[missing] = _status.MISSING_INPUT
+        sub[nonfinite] = _status.NON_FINITE_INPUT
+        st[bad] = sub
+
+
 def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
     """Model prices of European options.
 
@@ -109,6 +142,7 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
             _black.bsm_price(und, K, T, D, q, vol, cp, p, st)
         else:
             _black.black76_price(und, K, T, D, vol, cp, p, st)
+        _input_priority(plan, batch, und, K, T, q, cp, vol, st)
         _finite_or_out_of_range(p, st)
         return {"price": float_column(p, st == 0), "status": status_column(st)}
 
@@ -178,12 +212,14 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
 
     if plan.quote == "premium":
         iv, g, st = solve(plan.floats(batch, "premium"))
+        _input_priority(plan, batch, und, K, T, q, cp, None, st)
         return {"iv": float_column(iv, st == 0)}, g, st
     bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
     mid, half_spread = _mid_and_half_spread(bid, ask)
     iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
     iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
     iv_m, g, st_m = solve(mid)
+    _input_priority(plan, batch, und, K, T, q, cp, None, st_b, st_a, st_m)
     _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
     if "vega" in names:
         vega = g[names.index("vega")]
@@ -276,8 +312,9 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
 
     def compute(plan, batch):
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        out, st = _greek_values(plan, names, und, K, T, D, q, plan.floats(batch, "vol"), cp,
-                                units)
+        vol = plan.floats(batch, "vol")
+        out, st = _greek_values(plan, names, und, K, T, D, q, vol, cp, units)
+        _input_priority(plan, batch, und, K, T, q, cp, vol, st)
         ok = st == 0
         cols = {name: _ok_column(out[j], ok) for j, name in enumerate(names)}
         cols["status"] = status_column(st)
