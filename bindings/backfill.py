@@ -139,11 +139,14 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     if done is not None:
         return dict(info, state="skipped", rows=done, statuses={})
     os.makedirs(out_dir, exist_ok=True)
-    source = _stream.open_input(part.files[0] if len(part.files) == 1 else out_dir,
-                                batch_rows, files=part.files, partitioning=None)
-    plan = _stream.SweepPlan.build(source.schema, **options)
-    before = _misses()
-    res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True)
+    try:
+        source = _stream.open_input(os.path.dirname(part.files[0]), batch_rows,
+                                    files=part.files, partitioning=None)
+        plan = _stream.SweepPlan.build(source.schema, **options)
+        before = _misses()
+        res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True)
+    except (ValueError, TypeError, OSError) as exc:
+        raise _stream.StreamError(f"partition {part.rel}: {_stream._one_line(exc)}") from None
     info["compiled"] = _misses() - before
     return dict(info, state="written", rows=res.rows, statuses=res.statuses)
 
@@ -194,7 +197,37 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
     _stream.SweepPlan.build(first.schema, **options)   # schema errors now, not on a worker
     os.makedirs(dst, exist_ok=True)
     _clean_temps(dst, parts)
+    # complete partitions are skipped here (no cluster at all for a finished backfill) and
+    # again inside each task, for a task that Dask runs a second time
+    results = []
+    todo = []
+    for part in parts:
+        rows = _complete_rows(os.path.join(dst, part.rel, PART_NAME), part.files)
+        if rows is None:
+            todo.append(part)
+        else:
+            results.append(dict(rel=part.rel, state="skipped", rows=rows, statuses={}))
+    if progress is not None:
+        progress.update(len(results))
+    if todo:
+        results += _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress)
+    elif progress is not None:
+        progress.close()
+    _clean_temps(dst, parts)
+    statuses: dict = {}
+    for r in results:
+        for col, counts in r["statuses"].items():
+            statuses.setdefault(col, Counter()).update(counts)
+    written = [r for r in results if r["state"] == "written"]
+    skipped = [r for r in results if r["state"] == "skipped"]
+    return BackfillResult(
+        partitions=len(parts), written=len(written), skipped=len(skipped),
+        rows_written=sum(r["rows"] for r in written), rows_skipped=sum(r["rows"] for r in skipped),
+        seconds=time.perf_counter() - t0, statuses=statuses,
+        workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r])
 
+
+def _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress) -> list:
     import distributed   # the optional dependency: only here
 
     saved = {k: os.environ.get(k) for k in list(worker_environ()) + ["PYTHONHASHSEED"]}
@@ -205,7 +238,7 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
         _restore_environ(saved)
         raise
     try:
-        futures = client.map(sweep_partition, parts, dst_root=dst, options=options,
+        futures = client.map(sweep_partition, todo, dst_root=dst, options=options,
                              batch_rows=batch_rows, pure=False)
         for fut in distributed.as_completed(futures):
             results.append(fut.result())
@@ -220,18 +253,7 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
         elif not isinstance(scheduler, distributed.Client):
             client.close()
         _restore_environ(saved)
-    _clean_temps(dst, parts)
-    statuses: dict = {}
-    for r in results:
-        for col, counts in r["statuses"].items():
-            statuses.setdefault(col, Counter()).update(counts)
-    written = [r for r in results if r["state"] == "written"]
-    skipped = [r for r in results if r["state"] == "skipped"]
-    return BackfillResult(
-        partitions=len(parts), written=len(written), skipped=len(skipped),
-        rows_written=sum(r["rows"] for r in written), rows_skipped=sum(r["rows"] for r in skipped),
-        seconds=time.perf_counter() - t0, statuses=statuses,
-        workers=[(r["pid"], r["threads"], r["compiled"]) for r in results])
+    return results
 
 
 def _connect(distributed, scheduler, n_workers):

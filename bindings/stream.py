@@ -414,16 +414,21 @@ class SweepPlan:
         sides = [columns.get("bid", "bid"), columns.get("ask", "ask")]
         has_prem = prem in names
         has_sides = any(s in names for s in sides)
+        if quotes == "auto" and "premium" in columns:      # a mapped quote is a choice
+            quotes = "premium"
+        elif quotes == "auto" and ("bid" in columns or "ask" in columns):
+            quotes = "bid-ask"
         if quotes == "auto" and has_prem and has_sides:
             raise ValueError(f"the input has both {prem!r} and {'/'.join(map(repr, sides))}: "
-                             "choose the quote to invert (--quotes premium or bid-ask; quotes= in Python)")
+                             "choose the quote to invert (--quotes premium or bid-ask; "
+                             "quotes= in Python)")
         hidden = set(sides) if quotes == "premium" else {prem} if quotes == "bid-ask" else set()
         visible = pa.schema([f for f in schema if f.name not in hidden])
         if quotes == "premium" and not has_prem:
-            raise ValueError(f"missing column {prem!r}: required for quotes='premium'")
+            raise ValueError(f"missing column {prem!r}: required for the premium quote")
         if quotes == "bid-ask" and not all(s in names for s in sides):
             missing = next(s for s in sides if s not in names)
-            raise ValueError(f"missing column {missing!r}: required for quotes='bid-ask'")
+            raise ValueError(f"missing column {missing!r}: required for the bid-ask quote")
         plan = ColumnPlan.build(visible, model=model, columns=columns, need_vol=False,
                                 need_quote=True, as_of=as_of)
         used = set(plan.source.values())
