@@ -21,7 +21,7 @@ from volsweep.kernel import implied as _implied
 from volsweep.kernel import status as _status
 from volsweep.kernel import sweep as _sweep
 
-from ._columns import ColumnPlan, check_model
+from ._columns import ColumnPlan, _readonly, check_model
 from ._input import as_batches
 from ._output import append, check_no_clash, float_column, output_schema, status_column
 
@@ -224,7 +224,8 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
     if "vega" in names:
         vega = g[names.index("vega")]
     else:
-        (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
+        # read-only like every kernel input: the specialisation greeks() already compiled
+        (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, _readonly(iv_m), cp)
     with np.errstate(all="ignore"):
         unc = half_spread / vega
     ok = st_m == 0
