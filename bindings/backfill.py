@@ -144,7 +144,8 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
                                     files=part.files, partitioning=None)
         plan = _stream.SweepPlan.build(source.schema, **options)
         before = _misses()
-        res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True)
+        res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True,
+                          dictionary=plan.dictionary)
     except (ValueError, TypeError, OSError) as exc:
         raise _stream.StreamError(f"partition {part.rel}: {_stream._one_line(exc)}") from None
     info["compiled"] = _misses() - before

@@ -58,12 +58,12 @@ def _open(args):
     return open_input(args.input, args.batch_rows)
 
 
-def _stream(args, source, transform, out_schema, verb: str) -> int:
+def _stream(args, source, transform, out_schema, verb: str, dictionary=None) -> int:
     from .stream import Progress, run, status_table
 
     progress = Progress(source.num_rows)
     res = run(source, args.output, transform, out_schema, overwrite=args.overwrite,
-              progress=progress)
+              progress=progress, dictionary=dictionary)
     rate = res.rows / res.seconds if res.seconds > 0 else 0.0
     print(f"{verb} {res.rows:,d} rows in {res.seconds:.2f} s ({rate / 1e6:.2f} M rows/s) "
           f"-> {args.output}", file=sys.stderr)
@@ -122,7 +122,8 @@ def cmd_price(args) -> int:
         return volsweep.price(batch, model=args.model, columns=cols, as_of=args.as_of)
 
     out_schema = transform(source.schema.empty_table()).schema
-    return _stream(args, source, transform, out_schema, "priced")
+    return _stream(args, source, transform, out_schema, "priced",
+                   source.schema.names + ["status"])
 
 
 def _greeks_arg(text: str):
@@ -162,7 +163,7 @@ def cmd_sweep(args) -> int:
     options = _sweep_options(args)
     source = _open(args)
     plan = SweepPlan.build(source.schema, **options)
-    return _stream(args, source, plan.transform, plan.out_schema, "swept")
+    return _stream(args, source, plan.transform, plan.out_schema, "swept", plan.dictionary)
 
 
 def cmd_backfill(args) -> int:

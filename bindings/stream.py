@@ -21,19 +21,22 @@ from __future__ import annotations
 
 import glob
 import os
+import queue
 import secrets
 import sys
+import threading
 import time
 from collections import Counter
 from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.csv as pcsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 DEFAULT_BATCH_ROWS = 1 << 18        # 262,144 rows: ~60 MB of inputs and outputs in flight
-PARQUET_COMPRESSION = "zstd"
+PARQUET_COMPRESSION = "snappy"     # pyarrow's default: fast, modest ratio
 _PARQUET_MAGIC = b"PAR1"
 _IPC_FILE_MAGIC = b"ARROW1"
 _IPC_STREAM_MAGIC = b"\xff\xff\xff\xff"
@@ -149,15 +152,68 @@ def open_input(path, batch_rows: int = DEFAULT_BATCH_ROWS, *, partitioning="hive
     except (OSError, pa.ArrowException) as exc:
         raise StreamError(f"cannot read {path}: {_one_line(exc)}") from None
 
+    fragments = list(dataset.get_fragments())
+    file_schema = dataset.schema
+    if part:
+        keys = set()
+        for frag in fragments:
+            keys |= set(ds.get_partition_keys(frag.partition_expression))
+        file_schema = pa.schema([f for f in dataset.schema if f.name not in keys])
+
     def batches():
-        # Scanner.to_batches yields batches in fragment order and row order even with
-        # threads (only the unordered scan may reorder); readahead is kept small so that
-        # memory stays bounded by a few batches.
-        scanner = dataset.scanner(batch_size=batch_rows, batch_readahead=2,
-                                  fragment_readahead=1, use_threads=True)
-        return _rechunk(scanner.to_batches(), batch_rows)
+        # One file after another, in the order given; each file is read by its own
+        # streaming reader (a row group / record batch / CSV block at a time), so memory is
+        # bounded by the largest row group or block, never by the file.  (The dataset
+        # scanner reads ahead without bound when the consumer is slower than the disk.)
+        for frag in fragments:
+            keys = ds.get_partition_keys(frag.partition_expression) if part else {}
+            for b in _rechunk(_file_batches(kind, frag.path, batch_rows, file_schema),
+                              batch_rows):
+                if b.schema != file_schema:
+                    raise StreamError(f"cannot read {frag.path}: its columns differ from "
+                                      f"those of the first file ({_schema_diff(b.schema, file_schema)})")
+                if keys:
+                    b = _with_keys(b, dataset.schema, keys)
+                yield b
 
     return Source(path, kind, dataset.schema, num_rows, lambda: _guarded(path, batches))
+
+
+def _schema_diff(got: pa.Schema, want: pa.Schema) -> str:
+    for f in want:
+        if f.name not in got.names:
+            return f"no column {f.name!r}"
+        if got.field(f.name).type != f.type:
+            return f"column {f.name!r} is {got.field(f.name).type}, not {f.type}"
+    extra = [n for n in got.names if n not in want.names]
+    return f"extra column {extra[0]!r}" if extra else "column order"
+
+
+def _with_keys(batch: pa.RecordBatch, schema: pa.Schema, keys: dict) -> pa.RecordBatch:
+    n = batch.num_rows
+    arrays = list(batch.columns)
+    for f in schema:
+        if f.name not in batch.schema.names:
+            value = keys.get(f.name)
+            arrays.append(pa.repeat(pa.scalar(value, type=f.type), n) if value is not None
+                          else pa.nulls(n, f.type))
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+def _file_batches(kind: str, path: str, batch_rows: int, schema: pa.Schema):
+    if kind == "parquet":
+        pf = pq.ParquetFile(path)
+        for rg in range(pf.metadata.num_row_groups):
+            yield from pf.iter_batches(batch_size=batch_rows, row_groups=[rg], use_threads=True)
+    elif kind == "ipc-file":
+        with pa.OSFile(path) as f:       # not memory-mapped: touched pages would count
+            reader = pa.ipc.open_file(f)
+            for i in range(reader.num_record_batches):
+                yield reader.get_batch(i)
+    else:   # csv: the first file's types for every file, blocks of ~1 MB
+        convert = pcsv.ConvertOptions(column_types=schema)
+        with pcsv.open_csv(path, convert_options=convert) as reader:
+            yield from reader
 
 
 def _ipc_stream_source(path: str, batch_rows: int) -> Source:
@@ -201,22 +257,67 @@ class AtomicParquetWriter:
 
     Used as a context manager: leaving the block without ``commit()`` (an exception, a
     ``KeyboardInterrupt``) removes the temporary file and leaves ``dst`` untouched.
+
+    ``dictionary``: the columns to dictionary-encode (None: all).  Computed vols and Greeks
+    are nearly all distinct: trying a dictionary on them first costs more than the rest of
+    the write, so the sweep passes its input and status columns only.
+
+    ``background=True`` writes in a thread (Parquet encoding releases the GIL), so the
+    next batch is computed while this one is encoded; at most one batch waits in between.
     """
 
-    def __init__(self, dst: str, schema: pa.Schema, compression: str = PARQUET_COMPRESSION):
+    def __init__(self, dst: str, schema: pa.Schema, compression: str = PARQUET_COMPRESSION,
+                 dictionary: list | None = None, background: bool = False):
         self.dst = os.path.abspath(dst)
         self.tmp = temp_path(self.dst)
         self.schema = schema
-        self._writer = pq.ParquetWriter(self.tmp, schema, compression=compression)
+        self._writer = pq.ParquetWriter(self.tmp, schema, compression=compression,
+                                        use_dictionary=True if dictionary is None
+                                        else list(dictionary))
         self.committed = False
+        self._queue = self._thread = self._error = None
+        if background:
+            self._queue = queue.Queue(maxsize=1)
+            self._thread = threading.Thread(target=self._drain, name="volsweep-writer",
+                                            daemon=True)
+            self._thread.start()
 
-    def write(self, batch) -> None:
+    def _write_now(self, batch) -> None:
         if isinstance(batch, pa.Table):
             self._writer.write_table(batch)
         else:
             self._writer.write_batch(batch)
 
+    def _drain(self) -> None:
+        while True:
+            batch = self._queue.get()
+            if batch is None:
+                return
+            if self._error is None:
+                try:
+                    self._write_now(batch)
+                except BaseException as exc:   # handed to the producer on its next call
+                    self._error = exc
+
+    def _check(self) -> None:
+        if self._error is not None:
+            raise self._error
+
+    def write(self, batch) -> None:
+        if self._thread is None:
+            self._write_now(batch)
+            return
+        self._check()
+        self._queue.put(batch)
+
+    def _stop(self) -> None:
+        if self._thread is not None and self._thread.is_alive():
+            self._queue.put(None)
+            self._thread.join()
+
     def commit(self) -> None:
+        self._stop()
+        self._check()
         self._writer.close()
         with open(self.tmp, "rb+") as f:
             os.fsync(f.fileno())
@@ -225,6 +326,9 @@ class AtomicParquetWriter:
         self.committed = True
 
     def abort(self) -> None:
+        if self._thread is not None:
+            self._error = self._error or RuntimeError("aborted")   # skip what is queued
+            self._stop()
         try:
             self._writer.close()
         except Exception:   # the file is being thrown away
@@ -357,13 +461,16 @@ class RunResult:
 
 
 def run(source: Source, dst: str, transform, out_schema: pa.Schema, *, overwrite: bool = False,
-        progress: Progress | None = None, compression: str = PARQUET_COMPRESSION) -> RunResult:
+        progress: Progress | None = None, compression: str = PARQUET_COMPRESSION,
+        dictionary: list | None = None) -> RunResult:
     """Stream ``source`` through ``transform`` (RecordBatch -> RecordBatch or Table) into a
-    Parquet file ``dst``, atomically.  ``out_schema`` is written even for an empty input."""
+    Parquet file ``dst``, atomically.  ``out_schema`` is written even for an empty input;
+    ``dictionary``: columns to dictionary-encode (None: all)."""
     check_output(dst, overwrite)
     rows, counts = 0, {}
     t0 = time.perf_counter()
-    with AtomicParquetWriter(dst, out_schema, compression) as writer:
+    with AtomicParquetWriter(dst, out_schema, compression, dictionary,
+                             background=True) as writer:
         for batch in source.batches():
             out = transform(batch)
             if out.schema != out_schema:
@@ -448,6 +555,12 @@ class SweepPlan:
         out_schema = pa.schema(list(kept_schema) + [probe.schema.field(n) for n in outputs],
                                metadata=schema.metadata)
         return cls(needed, kept, out_schema, len(outputs), options)
+
+    @property
+    def dictionary(self) -> list:
+        """Columns worth dictionary encoding: the kept inputs and the statuses."""
+        return self.kept + [n for n in self.out_schema.names[len(self.kept):]
+                            if n.startswith("status")]
 
     def transform(self, batch: pa.RecordBatch) -> pa.RecordBatch:
         import volsweep
