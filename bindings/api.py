@@ -27,28 +27,35 @@ from ._output import append, check_no_clash, float_column, output_schema, status
 
 
 _LAUNCH_LOCK = threading.Lock()
-_serialise = None  # unknown until the first launch: then True for a layer unsafe in threads
+_workqueue = None  # is numba's threading layer "workqueue"?  Known after the first launch
+
+
+def _probe_threading_layer() -> bool:
+    """Start numba's threading layer with a one-row price (an already compiled loop) and
+    say whether it is ``workqueue``, which is not thread-safe and aborts the process on a
+    nested parallel launch."""
+    global _workqueue
+    with _LAUNCH_LOCK:
+        if _workqueue is None:
+            one = _readonly(np.ones(1))
+            _black.black76_price(one, one, one, one, one, _readonly(np.ones(1, np.int8)),
+                                 np.empty(1), np.empty(1, np.int8))
+            _workqueue = numba.threading_layer() == "workqueue"
+    return _workqueue
 
 
 @contextlib.contextmanager
 def _kernel_launch():
     """Serialise kernel launches when numba's threading layer is not thread-safe.
 
-    ``omp`` and ``tbb`` take parallel launches from several Python threads; ``workqueue``
-    aborts the process.  The layer is known only after the first parallel launch, so that
-    one is made under the lock.
+    ``omp`` and ``tbb`` take parallel launches from several Python threads at once;
+    ``workqueue`` aborts the process, so under it one call at a time runs the kernels.
     """
-    global _serialise
-    if _serialise is False:
+    if _workqueue is False or not _probe_threading_layer():
         yield
         return
     with _LAUNCH_LOCK:
         yield
-        if _serialise is None:
-            try:
-                _serialise = numba.threading_layer() == "workqueue"
-            except ValueError:  # no parallel kernel ran (e.g. an empty batch)
-                pass
 
 
 def _finite_or_out_of_range(values: np.ndarray, st: np.ndarray) -> None:
@@ -205,9 +212,16 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
     mask = _greeks.greek_mask(names, plan.model) if names else 0
 
     def solve(premium):
-        if not names:
+        if not names or _workqueue:
             iv, st = _iv_kernel(plan, premium, und, K, T, D, q, cp)
-            return iv, None, st
+            if not names:
+                return iv, None, st
+            # The fused sweep loop launches nested loops, which abort the process under
+            # the workqueue layer: there, the Greeks are computed after the vols instead
+            # (same values up to FMA contraction; the fused pass is bit-identical to
+            # itself under every other layer).
+            g, _ = _greek_values(plan, names, und, K, T, D, q, _readonly(iv), cp)
+            return iv, g, st
         return _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask)
 
     if plan.quote == "premium":
