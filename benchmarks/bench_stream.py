@@ -107,7 +107,8 @@ def throughput(path, out_dir, repeats=5):
                    dictionary=plan.dictionary)
 
     def plain():
-        stream.run(src, out, lambda b: b, src.schema, overwrite=True)
+        stream.run(src, out, lambda b: b, src.schema, overwrite=True,
+                   dictionary=stream.dictionary_columns(src.schema))
 
     def pyarrow_whole():
         pq.write_table(pq.read_table(path), out)
@@ -115,14 +116,17 @@ def throughput(path, out_dir, repeats=5):
     impls = {"sweep": sweep, "plain": plain, "pyarrow": pyarrow_whole}
     sweep()                                   # warm-up: kernels loaded, file cached
     times = {k: [] for k in impls}
+    cpu = {k: [] for k in impls}
     for _ in range(repeats):
         for name, fn in impls.items():        # taking turns: load changes hit all alike
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             fn()
             times[name].append(time.perf_counter() - t0)
+            cpu[name].append(time.process_time() - c0)
     os.remove(out)
     n = pq.read_metadata(path).num_rows
-    return n, {k: statistics.median(v) for k, v in times.items()}
+    return n, ({k: statistics.median(v) for k, v in times.items()},
+               {k: statistics.median(v) for k, v in cpu.items()})
 
 
 def _mib(b):
@@ -159,12 +163,14 @@ def main(argv=None) -> int:
         if len(rss) > 1:
             (n0, p0, _), (n1, p1, _) = rss[0], rss[-1]
             print(f"  {n1 / n0:.0f}x the rows -> {p1 / p0:.2f}x the peak RSS")
-        n, t = throughput(paths[0], out_dir, args.repeats)
-        print(f"\nParquet -> Parquet, {n:,d} rows, medians of {args.repeats} (taking turns)")
+        n, (t, cpu) = throughput(paths[0], out_dir, args.repeats)
+        print(f"\nParquet -> Parquet, {n:,d} rows, medians of {args.repeats} (taking turns); "
+              f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f}")
         for name, label in (("sweep", "sweep (iv + 16 Greeks)"),
                             ("plain", "plain read + write, same driver and writer"),
                             ("pyarrow", "pq.read_table + pq.write_table")):
-            print(f"  {label:<44s} {t[name]:7.3f} s {n / t[name] / 1e6:7.2f} M rows/s")
+            print(f"  {label:<44s} {t[name]:7.3f} s {n / t[name] / 1e6:7.2f} M rows/s "
+                  f"(CPU {cpu[name]:.2f} s)")
         print(f"  sweep / plain   = {t['plain'] / t['sweep']:.2f}  (target >= 0.5)")
         print(f"  sweep / pyarrow = {t['pyarrow'] / t['sweep']:.2f}")
     finally:

@@ -115,6 +115,8 @@ def cmd_gen(args) -> int:
 def cmd_price(args) -> int:
     import volsweep
 
+    from .stream import dictionary_columns
+
     cols = _mapping(args.map)
     source = _open(args)
 
@@ -123,7 +125,7 @@ def cmd_price(args) -> int:
 
     out_schema = transform(source.schema.empty_table()).schema
     return _stream(args, source, transform, out_schema, "priced",
-                   source.schema.names + ["status"])
+                   dictionary_columns(out_schema))
 
 
 def _greeks_arg(text: str):
