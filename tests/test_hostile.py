@@ -294,6 +294,46 @@ def test_timestamp_years_match_act365f_far_from_the_epoch():
     assert got.column("price").equals(ref.column("price"))
 
 
+def test_readme_zero_vol_at_the_strike_has_null_infinite_greeks():
+    # README: at F == K with zero vol the row is ok, the Greeks that are infinite in the
+    # limit are null and the others are the limits.  Common practice (the limit of
+    # N(d1) as d1 -> 0): delta -> w e^{-qT} / 2; vega -> A sqrt(T) / sqrt(2 pi).
+    t = {"forward": [100.0, 100.0], "strike": 100.0, "expiry_years": 1.0, "rate": 0.0,
+         "vol": 0.0, "is_call": np.array([True, False])}
+    out = volsweep.greeks(t, model="black76")
+    assert out.column("status").to_pylist() == ["ok", "ok"]
+    for name in ("gamma", "speed", "zomma", "color", "dual_gamma"):
+        assert out.column(name).null_count == 2, name
+    assert out.column("delta").to_pylist() == pytest.approx([0.5, -0.5], rel=1e-15)
+    assert out.column("vega").to_pylist() == pytest.approx([100 / np.sqrt(2 * np.pi)] * 2,
+                                                           rel=1e-15)
+    assert out.column("theta").null_count == 0
+
+
+def test_readme_price_that_overflows_is_out_of_range():
+    # a put struck at the largest double, discount factor e^{0.05} > 1: D K overflows
+    t = {"spot": 100.0, "strike": 1.7976931348623157e308, "expiry_years": 1.0,
+         "rate": -0.05, "vol": 0.2, "is_call": False}
+    out = volsweep.price(t)
+    assert out.column("status").to_pylist() == ["out_of_range"]
+    assert out.column("price").null_count == 1
+    g = volsweep.greeks(t, which=GREEKS_TWO)
+    assert g.column("status").to_pylist() == ["ok"]
+    assert np.isfinite(g.column("delta")[0].as_py())
+
+
+def test_readme_infinite_rate_or_time_is_non_finite_input():
+    # the kernel sees only e^{-rT}; the README promises non_finite_input for a +-inf input
+    out = volsweep.price({"spot": 42.0, "strike": 40.0, "vol": 0.2, "is_call": True,
+                          "expiry_years": [0.5, np.inf, 0.0, 0.5, 0.5],
+                          "rate": [np.inf, 0.0, np.inf, -np.inf, 0.1],
+                          "div_yield": [0.0, 0.0, 0.0, 0.0, -np.inf]})
+    assert out.column("status").to_pylist() == ["non_finite_input"] * 5
+    out = volsweep.price({"spot": 42.0, "strike": -1.0, "vol": 0.2, "is_call": True,
+                          "expiry_years": 0.5, "rate": 0.1, "div_yield": [np.nan, np.inf]})
+    assert out.column("status").to_pylist() == ["missing_input", "non_finite_input"]
+
+
 # ----------------------------------------------------------------- schema problems
 
 def _good_table(op, model, n=3):
