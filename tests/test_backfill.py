@@ -173,7 +173,10 @@ def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
         after = set(client.run(os.getpid).values())
     killed = int(open(marker).read())
     assert killed in before and killed not in after          # a worker really died
-    assert res.written == len(DATES) and res.skipped == 0
+    # a partition the dead worker had committed before its result reached the scheduler
+    # is found complete by the rescheduled task and skipped, not written twice
+    assert res.written + res.skipped == len(DATES) and res.skipped <= 2
+    assert res.rows == sum(pq.read_metadata(p).num_rows for p in paths)
     _check_against_single_machine(paths, str(src), str(dst), tmp_path)
     again = bf.backfill(src, dst, **OPTS)                     # no cluster needed: all done
     assert (again.written, again.skipped) == (0, len(DATES))
