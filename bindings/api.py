@@ -305,6 +305,12 @@ def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
 
 def _greek_list(which, model) -> tuple:
     """Validated Greek names, in output order (raises on an unknown name)."""
+    if which is not None and not isinstance(which, str):
+        try:
+            which = list(which)
+        except TypeError:
+            raise TypeError(f"which= must be a Greek name, a list of them or None, "
+                            f"got {which!r}") from None
     return _greeks.greek_names(_greeks.greek_mask(which, model))
 
 

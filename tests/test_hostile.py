@@ -435,6 +435,8 @@ def test_duplicated_as_of_column_and_bad_arguments():
         volsweep.price(t, as_of=now[0], columns="strike")
     with pytest.raises(ValueError, match="NaT"):
         volsweep.price(t, as_of=np.datetime64("NaT"))
+    with pytest.raises(TypeError, match="which"):
+        volsweep.greeks(t.append_column("x", pa.array([1.0])), which=3, as_of=now[0])
 
 
 # ----------------------------------------------------------------- command line
