@@ -40,7 +40,7 @@ PARQUET_COMPRESSION = "snappy"     # pyarrow's default: fast, modest ratio
 _PARQUET_MAGIC = b"PAR1"
 _IPC_FILE_MAGIC = b"ARROW1"
 _IPC_STREAM_MAGIC = b"\xff\xff\xff\xff"
-_CSV_SUFFIXES = (".csv", ".csv.gz", ".csv.bz2", ".tsv")
+_CSV_SUFFIXES = (".csv", ".csv.gz", ".csv.bz2")
 
 
 class StreamError(ValueError):
@@ -170,8 +170,9 @@ def open_input(path, batch_rows: int = DEFAULT_BATCH_ROWS, *, partitioning="hive
             for b in _rechunk(_file_batches(kind, frag.path, batch_rows, file_schema),
                               batch_rows):
                 if b.schema != file_schema:
+                    why = _schema_diff(b.schema, file_schema)
                     raise StreamError(f"cannot read {frag.path}: its columns differ from "
-                                      f"those of the first file ({_schema_diff(b.schema, file_schema)})")
+                                      f"those of the first file ({why})")
                 if keys:
                     b = _with_keys(b, dataset.schema, keys)
                 yield b

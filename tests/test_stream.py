@@ -315,3 +315,16 @@ def test_summary_on_stderr_when_not_a_terminal(snap_file, tmp_path, capsys):
     counts = {ln.split()[0]: int(ln.split()[1].replace(",", "")) for ln in lines[2:]}
     st = pq.read_table(out).column("status").to_pylist()
     assert counts == {k: st.count(k) for k in set(st)}
+
+
+def test_error_folder_whose_files_differ(snap, tmp_path, capsys):
+    root = tmp_path / "d"
+    root.mkdir()
+    base = snap.slice(0, 3000).drop_columns(["bid", "ask"])
+    pq.write_table(base, root / "a.parquet")
+    pq.write_table(base.drop_columns(["strike"]), root / "b.parquet")
+    out = tmp_path / "o.parquet"
+    assert main(["sweep", str(root), "-o", str(out)]) == 2
+    line = _one_error_line(capsys)
+    assert "b.parquet" in line and "'strike'" in line
+    assert not out.exists()
