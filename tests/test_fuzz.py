@@ -250,3 +250,13 @@ def test_sweep_from_premium(fuzz):
     iv = volsweep.implied_vol(inp)
     assert out.column("status").equals(iv.column("status"))
     assert out.column("iv").equals(iv.column("iv"))
+
+
+def test_inputs_untouched_after_every_operation(fuzz):
+    # runs after the operations above on the same module-scoped table: its buffers must
+    # still hold the generated values (the outputs share those buffers zero-copy)
+    t, raw = fuzz
+    for name in ("spot", "strike", "expiry_years", "rate", "div_yield", "vol", "premium",
+                 "bid", "ask"):
+        got = t.column(name).combine_chunks().fill_null(np.nan).to_numpy()
+        assert np.array_equal(got.view(np.uint64), raw[name].view(np.uint64)), name
