@@ -6,5 +6,7 @@ Outputs are model values, not investment advice.
 from .api import greeks, implied_vol, price, sweep
 from volsweep.kernel.greeks import GREEK_NAMES
 
-__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price", "sweep"]
+from .warmup import warmup
+
+__all__ = ["GREEK_NAMES", "greeks", "implied_vol", "price", "sweep", "warmup"]
 __version__ = "0.1.0"
