@@ -7,5 +7,7 @@ from .api import greeks, implied_vol, price, sweep
 from .backfill import backfill
 from volsweep.kernel.greeks import GREEK_NAMES
 
-__all__ = ["GREEK_NAMES", "backfill", "greeks", "implied_vol", "price", "sweep"]
+from .warmup import warmup
+
+__all__ = ["GREEK_NAMES", "backfill", "greeks", "implied_vol", "price", "sweep", "warmup"]
 __version__ = "0.1.0"

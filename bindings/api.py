@@ -69,7 +69,9 @@ def _finite_or_out_of_range(values: np.ndarray, st: np.ndarray) -> None:
 def _ok_column(values: np.ndarray, ok: np.ndarray) -> pa.Array:
     """A secondary output (Greek, spread uncertainty): null where the row is not ok, and
     null where its value is not a finite double (an infinite limit, an overflow)."""
-    return float_column(values, ok & np.isfinite(values))
+    valid = np.isfinite(values)
+    valid &= ok
+    return float_column(values, valid)
 
 
 def _run(data, plan_kwargs, outputs, compute) -> pa.Table:

@@ -19,14 +19,29 @@ from numba.core import caching
 _KERNEL_DIR = os.path.dirname(os.path.abspath(__file__))
 
 
-def kernel_source_hash() -> bytes:
-    """sha256 over the names, sizes and mtimes-independent contents of kernel/*.py."""
+def hash_sources(folder: str) -> bytes:
+    """sha256 over the names and contents (not mtimes) of folder/*.py."""
     h = hashlib.sha256()
-    for path in sorted(glob.glob(os.path.join(_KERNEL_DIR, "*.py"))):
+    for path in sorted(glob.glob(os.path.join(folder, "*.py"))):
         h.update(os.path.basename(path).encode())
         with open(path, "rb") as f:
             h.update(hashlib.sha256(f.read()).digest())
     return h.digest()
+
+
+_STAMP: list = []
+
+
+def kernel_source_hash() -> bytes:
+    """The hash of the kernel sources as this process imported them.
+
+    Taken once, at import: a process that keeps running while someone edits kernel/ goes
+    on stamping what it compiles with the hash of the code it actually runs, so it cannot
+    file old machine code under the new sources' stamp.
+    """
+    if not _STAMP:
+        _STAMP.append(hash_sources(_KERNEL_DIR))
+    return _STAMP[0]
 
 
 class _PackageStamp:
@@ -43,14 +58,16 @@ class _PackageStamp:
 class KernelUserProvidedLocator(_PackageStamp, caching.UserProvidedCacheLocator):
     """Cache in NUMBA_CACHE_DIR when it is set (numba's own precedence).
 
-    The folder does not depend on where the sources are: the stamp already identifies the
-    kernel sources exactly, so two checkouts of the same kernel (a CI clone beside a
-    developer's tree, Dask workers on a shared file system) share one compiled cache.
+    The folder does not depend on where the sources are, only on their hash: two checkouts
+    of the same kernel (a CI clone beside a developer's tree, Dask workers on a shared file
+    system) share one compiled cache, and two different kernels (a branch beside main)
+    keep separate ones instead of overwriting each other's index files.
     """
 
     def __init__(self, py_func, py_file):
         super().__init__(py_func, py_file)
-        self._cache_path = os.path.join(caching.config.CACHE_DIR, "volsweep-kernel")
+        self._cache_path = os.path.join(caching.config.CACHE_DIR, "volsweep-kernel",
+                                        kernel_source_hash().hex()[:16])
 
 
 class KernelInTreeLocator(_PackageStamp, caching.InTreeCacheLocator):
@@ -62,6 +79,7 @@ class KernelUserWideLocator(_PackageStamp, caching.UserWideCacheLocator):
 
 
 def install() -> None:
+    kernel_source_hash()
     classes = caching.CacheImpl._locator_classes
     for cls in (KernelUserWideLocator, KernelInTreeLocator, KernelUserProvidedLocator):
         if cls not in classes:

@@ -5,8 +5,17 @@ Two tiers (see DEVELOPERS.md):
 * ``scalar`` -- pointwise float64 functions, always inlined into their callers so that the
   array loops see straight-line code LLVM can vectorise.  They are also callable from
   Python (for tests) and from any other numba-jitted code.
-* ``loop`` -- the array loops (``prange``), which own threading.  ``nogil`` so that a risk
-  engine can call them from several Python threads.
+* ``rows`` -- serial loops over one range of rows ``[a, e)`` of their arrays: the body of
+  every array operation, compiled once and *called* (not inlined) from the parallel loop,
+  from the fused sweep and, for small inputs, straight from Python.
+* ``loop`` -- the parallel loops (``prange``), which own threading: thin wrappers that hand
+  blocks of ``BLOCK`` rows to a ``rows`` function.  ``nogil`` so that a risk engine can call
+  them from several Python threads.
+
+Why two loops per operation: numba inlines the scalar tier at its own IR level, which is
+what makes a cold compile slow (tens of seconds per loop).  Writing the body once as a
+serial row-range loop means it is compiled once, and the parallel wrapper, the sweep and
+small-input calls all reuse the same machine code, so they also give the same bits.
 
 Why these flags:
 
@@ -25,13 +34,26 @@ Why these flags:
   own file.
 """
 
+import os
+import types
+
 import numba
 
 from . import _cache
 
 _cache.install()
 
+# Threading layer: a risk engine calls the kernels from many Python threads at once, and
+# numba's fallback layer (workqueue) aborts the process when two threads launch parallel
+# loops concurrently.  "threadsafe" makes numba pick tbb if installed, else GNU OpenMP
+# (thread-safe on Linux; not fork-safe, so worker pools must spawn, not fork), and raise
+# rather than fall back to workqueue.  An explicit NUMBA_THREADING_LAYER wins.
+if "NUMBA_THREADING_LAYER" not in os.environ:
+    numba.config.THREADING_LAYER = "threadsafe"
+
 FASTMATH = frozenset({"contract"})
+
+BLOCK = 2048  # rows per parallel task: a block's columns stay in L1/L2 between steps
 
 
 def scalar(fn):
@@ -46,7 +68,33 @@ def loop(fn):
                       cache=True, nogil=True)(fn)
 
 
+def rows(fn):
+    """Serial loop over rows ``a <= i < e`` (first two arguments), called per block."""
+    return numba.njit(parallel=False, error_model="numpy", fastmath=set(FASTMATH),
+                      cache=True, nogil=True)(fn)
+
+
 def serial_loop(fn):
     """Single-threaded array loop (used where parallel overhead dominates)."""
     return numba.njit(parallel=False, error_model="numpy", fastmath=set(FASTMATH),
                       cache=True, nogil=True)(fn)
+
+
+def specialise(template, name: str, **consts):
+    """A copy of ``template`` called ``name`` that also sees ``consts`` as globals.
+
+    For kernels built per configuration (one per mask of Greeks): numba freezes global
+    values into the machine code, files its cache under the qualified name, and names the
+    machine-code symbols after it.  A closure would do the first, but copies sharing one
+    qualified name share one symbol name, and when one cached kernel links another, two
+    configurations with equal names can be merged into one (LLVM assumes equal names mean
+    equal code) and a kernel silently runs the other's code.  A closure capturing a
+    dispatcher also never hits the cache (its key pickles a per-process uuid).  So: a
+    distinct name per configuration, and no closures.
+    """
+    g = dict(template.__globals__)
+    g.update(consts)
+    fn = types.FunctionType(template.__code__, g, name, template.__defaults__)
+    fn.__qualname__ = name
+    fn.__module__ = template.__module__
+    return fn

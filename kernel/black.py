@@ -36,7 +36,8 @@ import numpy as np
 from numba import prange
 
 from . import status as S
-from ._jit import loop, scalar
+from . import _args
+from ._jit import BLOCK, loop, rows, scalar
 from .special import erfcx, exp, log
 
 _SQRT1_2 = 0.7071067811865476
@@ -127,10 +128,19 @@ def spot_status(spot, T, D, q, F):
     return S.OUT_OF_RANGE if (st == S.OK and bad_fwd) else st
 
 
-@loop
-def black76_price(F, K, T, D, vol, cp, price, status):
-    """Black-76 prices of options on forwards F; cp = +1 call, -1 put, 0 missing."""
-    for i in prange(F.shape[0]):
+@scalar
+def bsm_inputs(spot, K, T, D, q, vol, cp):
+    """One BSM row: (status, forward S e^{-qT}/D, e^{-qT}); the status in priority order."""
+    dq = exp(-q * T)
+    f = spot * dq / D                    # = bsm_forward(spot, T, D, q), bit for bit
+    st = input_status(spot, K, T, D, vol, cp)
+    st2 = spot_status(spot, T, D, q, f)
+    return (st2 if (st == S.OK and st2 != S.OK) else st), f, dq
+
+
+@rows
+def _black76_price_rows(a, e, F, K, T, D, vol, cp, price, status):
+    for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
         f = F[i]
         k = K[i]
         tt = T[i]
@@ -142,19 +152,54 @@ def black76_price(F, K, T, D, vol, cp, price, status):
         status[i] = st
 
 
-@loop
-def bsm_price(spot, K, T, D, q, vol, cp, price, status):
-    """Black-Scholes-Merton prices on spot with continuous dividend yield q."""
-    for i in prange(spot.shape[0]):
+@rows
+def _bsm_price_rows(a, e, spot, K, T, D, q, vol, cp, price, status):
+    for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
         tt = T[i]
-        f = bsm_forward(spot[i], tt, D[i], q[i])
-        st = input_status(spot[i], K[i], tt, D[i], vol[i], cp[i])
-        st2 = spot_status(spot[i], tt, D[i], q[i], f)
-        st = st2 if (st == S.OK and st2 != S.OK) else st
-        k = K[i]
+        st, f, _ = bsm_inputs(spot[i], K[i], tt, D[i], q[i], vol[i], cp[i])
         s = vol[i] * math.sqrt(tt if tt > 0.0 else 0.0)
         ok = st == S.OK
-        p = black_price(f if ok else 1.0, k if ok else 1.0, s if ok else 1.0, D[i],
+        p = black_price(f if ok else 1.0, K[i] if ok else 1.0, s if ok else 1.0, D[i],
                         float(cp[i]))
         price[i] = p if ok else NAN
         status[i] = st
+
+
+@loop
+def _black76_price_par(F, K, T, D, vol, cp, price, status):
+    n = F.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        _black76_price_rows(b * BLOCK, min(n, (b + 1) * BLOCK), F, K, T, D, vol, cp, price,
+                            status)
+
+
+@loop
+def _bsm_price_par(spot, K, T, D, q, vol, cp, price, status):
+    n = spot.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        _bsm_price_rows(b * BLOCK, min(n, (b + 1) * BLOCK), spot, K, T, D, q, vol, cp, price,
+                        status)
+
+
+def black76_price(F, K, T, D, vol, cp, price, status):
+    """Black-76 prices of options on forwards F into ``price``, with a ``status`` per row.
+
+    F, K, T (years), D (discount factor), vol: float64 arrays of one length n; cp: integer
+    codes, +1 call, -1 put, 0 missing; price (float64) and status (int8): preallocated.
+    """
+    F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
+    n = F.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("price", price, (n,), np.float64)
+    _args.output("status", status, (n,), np.int8)
+    _args.run(_black76_price_rows, _black76_price_par, n, F, K, T, D, vol, cp, price, status)
+
+
+def bsm_price(spot, K, T, D, q, vol, cp, price, status):
+    """Black-Scholes-Merton prices on spot with continuous dividend yield q (as black76)."""
+    spot, K, T, D, q, vol = _args.floats(None, spot, K, T, D, q, vol)
+    n = spot.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("price", price, (n,), np.float64)
+    _args.output("status", status, (n,), np.int8)
+    _args.run(_bsm_price_rows, _bsm_price_par, n, spot, K, T, D, q, vol, cp, price, status)

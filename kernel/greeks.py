@@ -95,8 +95,9 @@ from numba import prange
 
 from . import status as S
 from ._intrinsics import fma
-from ._jit import loop, scalar, serial_loop
-from .black import input_status, spot_status
+from . import _args
+from ._jit import BLOCK, loop, rows, scalar, specialise
+from .black import bsm_inputs, input_status
 from .special import erfcx, exp, log
 
 _SQRT1_2 = 0.7071067811865476
@@ -302,11 +303,7 @@ def _bsm_row(spot, K, T, D, q, vol, cp, i):
     d = D[i]
     y = q[i]
     v = vol[i]
-    st = input_status(u, k, tt, d, v, cp[i])
-    dq = exp(-y * tt)
-    f = u * dq / d                       # = black.bsm_forward(u, tt, d, y)
-    st2 = spot_status(u, tt, d, y, f)
-    st = st2 if (st == S.OK and st2 != S.OK) else st
+    st, f, dq = bsm_inputs(u, k, tt, d, y, v, cp[i])
     ok = st == S.OK
     return (st, u if ok else 1.0, k if ok else 1.0, tt if ok else 1.0, d if ok else 1.0,
             y if ok else 0.0, dq if ok else 1.0, f if ok else 1.0, v if ok else 0.2,
@@ -363,44 +360,58 @@ def _slots(mask):
     return tuple(slots), j
 
 
+# Templates of the per-mask loops; ``_kernel`` copies them per mask with SLOTS (the
+# output row of each Greek, -1 if not requested) and the row loop ROWS as frozen globals.
+def _b76_rows_template(a, e, F, K, T, D, vol, cp, out, status):
+    for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
+        st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp, i)
+        g = greeks_forward(f, k, tt, d, v, w)
+        _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821 (a global of each copy)
+        status[i] = st
+
+
+def _bsm_rows_template(a, e, spot, K, T, D, q, vol, cp, out, status):
+    for i in range(np.uint64(a), np.uint64(e)):
+        st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
+        g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
+        _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821
+        status[i] = st
+
+
+def _b76_par_template(F, K, T, D, vol, cp, out, status):
+    n = F.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), F, K, T, D, vol, cp, out, status)  # noqa: F821
+
+
+def _bsm_par_template(spot, K, T, D, q, vol, cp, out, status):
+    n = spot.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), spot, K, T, D, q, vol, cp, out,  # noqa: F821
+             status)
+
+
+_TEMPLATES = {"black76": (_b76_rows_template, _b76_par_template),
+              "bsm": (_bsm_rows_template, _bsm_par_template)}
+
+
 @functools.lru_cache(maxsize=None)
-def _kernel(model, mask, direct=None, serial=False):
-    """The loop specialised to one model and one mask (compiled on first use).
-
-    ``serial``: a single-threaded loop (kernel/sweep.py calls it per block).  ``direct`` is
-    accepted for compatibility and ignored: there is one loop shape.
-    """
+def _kernel(model, mask):
+    """(row loop, parallel loop) specialised to one model and one mask, compiled on first use
+    (kernel/sweep.py calls the row loop per block)."""
     sl, _ = _slots(mask)
-    deco = serial_loop if serial else loop
-
-    if model == "black76":
-        @deco
-        def kern(F, K, T, D, vol, cp, out, status):
-            for i in prange(F.shape[0]):
-                st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp, i)
-                g = greeks_forward(f, k, tt, d, v, w)
-                _store(out, i, g, st == S.OK, sl)
-                status[i] = st
-        return kern
-
-    @deco
-    def kern(spot, K, T, D, q, vol, cp, out, status):
-        for i in prange(spot.shape[0]):
-            st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
-            g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
-            _store(out, i, g, st == S.OK, sl)
-            status[i] = st
-    return kern
+    rows_t, par_t = _TEMPLATES[model]
+    tag = f"{model}_greeks_{mask:04x}"
+    row_loop = rows(specialise(rows_t, f"rows_{tag}", SLOTS=sl))
+    par_loop = loop(specialise(par_t, f"par_{tag}", ROWS=row_loop))
+    return row_loop, par_loop
 
 
-def _check_out(n, mask, out, status):
-    nsel = bin(mask).count("1")
+def _check_mask(mask):
+    mask = int(mask)
     if not (0 <= mask <= ALL_GREEKS):
         raise ValueError(f"mask {mask!r} outside 0..{ALL_GREEKS}")
-    if out.dtype != np.float64 or out.shape != (nsel, n) or not out.flags.c_contiguous:
-        raise ValueError(f"out must be a C-contiguous float64 array of shape {(nsel, n)}")
-    if status.dtype != np.int8 or status.shape != (n,):
-        raise ValueError(f"status must be an int8 array of shape {(n,)}")
+    return mask, bin(mask).count("1")
 
 
 def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
@@ -409,13 +420,21 @@ def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
     F, K, T, D, vol: float64 arrays; cp: int8 (+1 call, -1 put, 0 missing); mask from
     ``greek_mask``.  Rows whose status is not ok get NaN Greeks.
     """
-    mask = int(mask)
-    _check_out(F.shape[0], mask, out, status)
-    _kernel("black76", mask)(F, K, T, D, vol, cp, out, status)
+    mask, nsel = _check_mask(mask)
+    F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
+    n = F.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("out", out, (nsel, n), np.float64)
+    _args.output("status", status, (n,), np.int8)
+    _args.run(*_kernel("black76", mask), n, F, K, T, D, vol, cp, out, status)
 
 
 def bsm_greeks(spot, K, T, D, q, vol, cp, mask, out, status):
     """BSM Greeks (against spot, continuous yield q) into ``out[n_requested, n]``."""
-    mask = int(mask)
-    _check_out(spot.shape[0], mask, out, status)
-    _kernel("bsm", mask)(spot, K, T, D, q, vol, cp, out, status)
+    mask, nsel = _check_mask(mask)
+    spot, K, T, D, q, vol = _args.floats(None, spot, K, T, D, q, vol)
+    n = spot.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("out", out, (nsel, n), np.float64)
+    _args.output("status", status, (n,), np.int8)
+    _args.run(*_kernel("bsm", mask), n, spot, K, T, D, q, vol, cp, out, status)

@@ -48,9 +48,10 @@ from numba import prange
 
 from . import status as S
 from ._intrinsics import fma
-from ._jit import loop, scalar
-from .black import _is_inf, _is_nan, bsm_forward, input_status, spot_status
-from .special import erfcx, exp, log
+from . import _args
+from ._jit import BLOCK, loop, rows, scalar
+from .black import _is_inf, _is_nan, bsm_inputs, input_status
+from .special import erfcx, erfcx_guess, exp, log
 
 NAN = np.nan
 INF = np.inf
@@ -161,8 +162,12 @@ def normalised_time_value(P, F, K, D, theta):
 
 
 @scalar
-def _householder(s, x, lt, upper, sc):
+def _householder(s, x, lt, upper, sc, polish):
     """One Householder step (order 3) on ln y(s) = lt, y = r (lower) or c (upper), x <= 0.
+
+    ``polish`` (a constant at each call site): full-precision erfcx for the last step;
+    the first step uses ``erfcx_guess`` (5e-12), whose error the last step's fourth-order
+    convergence wipes out.
 
     The iterate is first clamped to its region's side of s_c (the root lies there, so this
     only ever moves it closer); the region's own formula then applies without cancellation
@@ -173,8 +178,10 @@ def _householder(s, x, lt, upper, sc):
     t = 0.5 * s
     d1 = h + t
     u2 = t - h
-    ea = erfcx((d1 if upper else -d1) * _SQRT1_2)
-    eb = erfcx(u2 * _SQRT1_2)
+    za = (d1 if upper else -d1) * _SQRT1_2    # >= 0 on the region's side of s_c
+    zb = u2 * _SQRT1_2
+    ea = erfcx(za) if polish else erfcx_guess(za)
+    eb = erfcx(zb) if polish else erfcx_guess(zb)
     sw = ea + eb if upper else ea - eb
     ell = log(0.5 * sw) - 0.5 * d1 * d1
     # g1 = s y'/y = +-2 s / (sqrt(2 pi) sw), the objective's elasticity, and 1 / g1
@@ -202,7 +209,7 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
     g = 1.0 / (e12 * e12 * e12)                  # e^{xi/4}
     sxi = math.sqrt(xi)
     # second erfcx argument by region: sqrt(xi/12) (lower map at s_c), sqrt(xi)/2 (upper)
-    ex2 = erfcx(sxi * (0.28867513459481287 if lower else 0.5))
+    ex2 = erfcx_guess(sxi * (0.28867513459481287 if lower else 0.5))
     p2 = 0.5 * ex2
     # lower: rational cubic of f(beta) on [0, b_c]: f(0)=0, f'(0)=1; value, slope and
     # curvature of f_l(s(beta)) at s_c (b'' = 0 there).  All per b_c; t = r / r_c.
@@ -266,8 +273,8 @@ def implied_total_vol(x, r, rs, lsc, c):
     lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
     # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
-    s = _householder(s, x, lt, not lower, sc)
-    s = _householder(s, x, lt, not lower, sc)
+    s = _householder(s, x, lt, not lower, sc, False)
+    s = _householder(s, x, lt, not lower, sc, True)
     tiny = (not lower) and r < _R_TINY
     return _SQRT2PI * (r - 0.5 * x) if tiny else s
 
@@ -283,10 +290,9 @@ def black_total_vol(P, F, K, D, theta):
     return (s if st == S.OK else NAN), st
 
 
-@loop
-def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
-    """Black-76 implied vols of premiums on forwards F; cp = +1 call, -1 put, 0 missing."""
-    for i in prange(F.shape[0]):
+@rows
+def _black76_iv_rows(a, e, premium, F, K, T, D, cp, iv_out, status_out):
+    for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
         f = F[i]
         k = K[i]
         tt = T[i]
@@ -300,19 +306,57 @@ def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
         status_out[i] = st
 
 
-@loop
-def bsm_iv(premium, spot, K, T, D, q, cp, iv_out, status_out):
-    """Black-Scholes-Merton implied vols on spot with continuous dividend yield q."""
-    for i in prange(spot.shape[0]):
+@rows
+def _bsm_iv_rows(a, e, premium, spot, K, T, D, q, cp, iv_out, status_out):
+    for i in range(np.uint64(a), np.uint64(e)):
         tt = T[i]
         dd = D[i]
-        f = bsm_forward(spot[i], tt, dd, q[i])
-        st = input_status(spot[i], K[i], tt, dd, 0.0, cp[i])
-        st2 = spot_status(spot[i], tt, dd, q[i], f)
-        st = st2 if (st == S.OK and st2 != S.OK) else st
+        st, f, _ = bsm_inputs(spot[i], K[i], tt, dd, q[i], 0.0, cp[i])
         ok = st == S.OK
         s, st3 = black_total_vol(premium[i], f if ok else 1.0, K[i] if ok else 1.0,
                                  dd if ok else 1.0, float(cp[i]) if ok else 1.0)
         st = st3 if ok else st
         iv_out[i] = s / math.sqrt(tt) if st == S.OK else NAN
         status_out[i] = st
+
+
+@loop
+def _black76_iv_par(premium, F, K, T, D, cp, iv_out, status_out):
+    n = F.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        _black76_iv_rows(b * BLOCK, min(n, (b + 1) * BLOCK), premium, F, K, T, D, cp, iv_out,
+                         status_out)
+
+
+@loop
+def _bsm_iv_par(premium, spot, K, T, D, q, cp, iv_out, status_out):
+    n = spot.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        _bsm_iv_rows(b * BLOCK, min(n, (b + 1) * BLOCK), premium, spot, K, T, D, q, cp,
+                     iv_out, status_out)
+
+
+def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
+    """Black-76 implied vols of premiums on forwards F; cp = +1 call, -1 put, 0 missing.
+
+    Inputs: float64 arrays of one length n (cp integer codes); outputs preallocated:
+    iv_out float64 (NaN where the status is not ok) and status_out int8.
+    """
+    premium, F, K, T, D = _args.floats(None, premium, F, K, T, D)
+    n = F.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("iv_out", iv_out, (n,), np.float64)
+    _args.output("status_out", status_out, (n,), np.int8)
+    _args.run(_black76_iv_rows, _black76_iv_par, n, premium, F, K, T, D, cp, iv_out,
+              status_out)
+
+
+def bsm_iv(premium, spot, K, T, D, q, cp, iv_out, status_out):
+    """Black-Scholes-Merton implied vols on spot with continuous dividend yield q."""
+    premium, spot, K, T, D, q = _args.floats(None, premium, spot, K, T, D, q)
+    n = spot.shape[0]
+    cp = _args.codes(n, cp)
+    _args.output("iv_out", iv_out, (n,), np.float64)
+    _args.output("status_out", status_out, (n,), np.int8)
+    _args.run(_bsm_iv_rows, _bsm_iv_par, n, premium, spot, K, T, D, q, cp, iv_out,
+              status_out)

@@ -258,6 +258,31 @@ def erfcx(x):
 
 
 @scalar
+def erfcx_guess(y):
+    """erfcx(y) for y >= 0 to <= 5e-12 relative, without an exponential: for iterates that
+    a later full-precision step polishes (about 40% cheaper than ``erfcx``).
+
+    Cody's region-2 rational (fitted on [0.46875, 4]) also serves [0, 0.46875], where it
+    is within 4.7e-12 of erfcx; region 3 as in ``erfcx`` above 4.  Negative y is treated
+    as 0.
+    """
+    y = y if y > 0.0 else 0.0
+    s = y * y
+    p2 = ((((((((_C9 * y + _C1) * y + _C2) * y + _C3) * y + _C4) * y + _C5) * y + _C6)
+           * y + _C7) * y + _C8)
+    q2 = (((((((y + _D1) * y + _D2) * y + _D3) * y + _D4) * y + _D5) * y + _D6) * y
+          + _D7) * y + _D8
+    p3 = ((((_P5 * s + _P4) * s + _P3) * s + _P2) * s + _P1) * s + _P6
+    q3 = ((((_Q5 * s + _Q4) * s + _Q3) * s + _Q2) * s + _Q1) * s + 1.0
+    wq3 = s * q3
+    num = _INV_SQRT_PI if y > _R3_MAX else wq3 * _INV_SQRT_PI - p3
+    den = y if y > _R3_MAX else y * wq3
+    num = p2 if y <= _R2_MAX else num
+    den = q2 if y <= _R2_MAX else den
+    return num / den
+
+
+@scalar
 def norm_cdf(x):
     """Standard normal cumulative distribution function Phi(x).
 

@@ -16,6 +16,8 @@ crossings).  Worst errors per Greek, in units of the bar, are printed with ``-s`
 """
 
 import math
+import subprocess
+import sys
 
 import numba
 import numpy as np
@@ -623,3 +625,37 @@ def test_serial_and_parallel_are_bit_identical():
     assert np.array_equal(s1, s2)
     for name in one:
         assert np.array_equal(one[name], two[name]), name
+
+
+_MIXED_MASKS = """
+import numpy as np
+from volsweep.kernel import greeks as G
+n = 5000
+rng = np.random.default_rng(5)
+U = rng.uniform(50, 150, n); K = rng.uniform(50, 150, n); T = rng.uniform(0.1, 2, n)
+D = np.exp(-0.03 * T); q = np.full(n, 0.01); v = rng.uniform(0.1, 0.5, n)
+cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
+st = np.empty(n, np.int8)
+results = []
+for which in (("vega",), ("delta", "gamma"), None):   # single blocks, then the parallel loop
+    m = G.greek_mask(which, "bsm")
+    for rows in (7, n):
+        out = np.full((bin(m).count("1"), rows), -7.0)
+        G.bsm_greeks(U[:rows], K[:rows], T[:rows], D[:rows], q[:rows], v[:rows], cp[:rows],
+                     m, out, st[:rows])
+        results.append(out)
+print(int(sum((r == -7.0).sum() for r in results)),
+      float(np.abs(results[-1][2][:7] - results[0][0]).max()))
+"""
+
+
+def test_kernels_of_different_masks_never_mix_in_a_new_process():
+    # regression: per-mask loops once shared symbol names, and a parallel loop loaded from
+    # the cache could run another mask's row loop (outputs left unwritten).  Two fresh
+    # processes: the first may compile, the second loads everything from the cache.
+    for _ in range(2):
+        r = subprocess.run([sys.executable, "-c", _MIXED_MASKS], capture_output=True,
+                           text=True, check=True)
+        unwritten, vega_diff = r.stdout.split()
+        assert int(unwritten) == 0
+        assert float(vega_diff) == 0.0      # vega alone == vega within all Greeks
