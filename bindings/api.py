@@ -20,6 +20,7 @@ from volsweep.kernel import greeks as _greeks
 from volsweep.kernel import implied as _implied
 from volsweep.kernel import status as _status
 from volsweep.kernel import sweep as _sweep
+from volsweep.kernel._jit import BLOCK as _BLOCK
 
 from ._columns import ColumnPlan, _readonly, check_model
 from ._input import as_batches
@@ -37,9 +38,11 @@ def _probe_threading_layer() -> bool:
     global _workqueue
     with _LAUNCH_LOCK:
         if _workqueue is None:
-            one = _readonly(np.ones(1))
-            _black.black76_price(one, one, one, one, one, _readonly(np.ones(1, np.int8)),
-                                 np.empty(1), np.empty(1, np.int8))
+            # more than one block: one block or less runs the row loop without a launch
+            n = _BLOCK + 1
+            one = _readonly(np.ones(n))
+            _black.black76_price(one, one, one, one, one, _readonly(np.ones(n, np.int8)),
+                                 np.empty(n), np.empty(n, np.int8))
             _workqueue = numba.threading_layer() == "workqueue"
     return _workqueue
 
