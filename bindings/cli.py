@@ -306,8 +306,8 @@ def build_parser() -> argparse.ArgumentParser:
             "partition.  Partitions already complete in DST are skipped: a re-run after a "
             "crash resumes and never duplicates rows.  Needs the dask extra.", 88),
         epilog=_SWEEP_EPILOG)
-    bf.add_argument("src", help="partitioned Parquet dataset folder")
-    bf.add_argument("dst", help="output dataset folder (created if missing)")
+    bf.add_argument("src", metavar="SRC", help="partitioned Parquet dataset folder")
+    bf.add_argument("dst", metavar="DST", help="output dataset folder (created if missing)")
     bf.add_argument("--scheduler", metavar="ADDRESS",
                     help="address of a running Dask scheduler (default: a local cluster of "
                     "one single-threaded worker process per core)")

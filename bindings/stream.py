@@ -270,7 +270,8 @@ def _ipc_stream_source(path: str, batch_rows: int) -> Source:
         with pa.OSFile(path) as f, pa.ipc.open_stream(f) as reader:
             yield from _rechunk(reader, batch_rows)
 
-    return Source(path, "ipc-stream", schema, None, lambda: _guarded(path, batches))
+    return Source(path, "ipc-stream", schema, None,
+                  lambda: _prefetched(_guarded(path, batches)))
 
 
 # -------------------------------------------------------------------------- output
@@ -521,21 +522,26 @@ def run(source: Source, dst: str, transform, out_schema: pa.Schema, *, overwrite
     check_output(dst, overwrite)
     rows, counts = 0, {}
     t0 = time.perf_counter()
-    with AtomicParquetWriter(dst, out_schema, compression, dictionary,
-                             background=True) as writer:
-        for batch in source.batches():
-            out = transform(batch)
-            if out.schema != out_schema:
-                raise StreamError(f"cannot read {source.path}: the schema changes between "
-                                  "batches or files")
-            writer.write(out)
-            count_statuses(out, counts)
-            rows += out.num_rows
-            if progress is not None:
-                progress.update(batch.num_rows)
+    try:
+        with AtomicParquetWriter(dst, out_schema, compression, dictionary,
+                                 background=True) as writer:
+            for batch in source.batches():
+                out = transform(batch)
+                if out.schema != out_schema:
+                    raise StreamError(f"cannot read {source.path}: the schema changes between "
+                                      "batches or files")
+                if out.num_rows != batch.num_rows:   # never: every row gets a status
+                    raise RuntimeError(f"transform returned {out.num_rows} rows for "
+                                       f"{batch.num_rows}")
+                writer.write(out)
+                count_statuses(out, counts)
+                rows += out.num_rows
+                if progress is not None:
+                    progress.update(batch.num_rows)
+            writer.commit()
+    finally:
         if progress is not None:
-            progress.close()
-        writer.commit()
+            progress.close()      # before any error line, and on Ctrl-C
     return RunResult(rows, time.perf_counter() - t0, counts)
 
 
@@ -548,7 +554,8 @@ class SweepPlan:
     """Everything decided once from the input schema for a streamed sweep.
 
     ``needed``: the input columns the sweep reads (the chosen quote only); ``kept``: the
-    input columns copied to the output; ``out_schema``: kept columns, then the outputs.
+    positions of the input columns copied to the output; ``out_schema``: kept columns,
+    then the outputs.
     """
 
     needed: list
@@ -593,16 +600,18 @@ class SweepPlan:
         used = set(plan.source.values())
         needed = [n for n in visible.names if n in used]
         if keep is None:
-            kept = list(names)
+            kept = list(range(len(names)))      # by position: duplicate names are kept too
         else:
-            kept = list(keep)
-            unknown = [k for k in kept if k not in names]
-            if unknown:
-                raise ValueError(f"missing column {unknown[0]!r}: asked to keep it")
+            for k in keep:
+                if k not in names:
+                    raise ValueError(f"missing column {k!r}: asked to keep it")
+                if names.count(k) > 1:
+                    raise ValueError(f"column {k!r} appears more than once in the input")
+            kept = [names.index(k) for k in keep]
         options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of)
         probe = volsweep.sweep(visible.empty_table().select(needed), **options)
         outputs = probe.schema.names[len(needed):]
-        kept_schema = pa.schema([schema.field(n) for n in kept])
+        kept_schema = pa.schema([schema.field(i) for i in kept])
         check_no_clash(kept_schema, outputs)
         out_schema = pa.schema(list(kept_schema) + [probe.schema.field(n) for n in outputs],
                                metadata=schema.metadata)
@@ -616,9 +625,10 @@ class SweepPlan:
         import volsweep
 
         res = volsweep.sweep(batch.select(self.needed), **self.options)
-        res = res.combine_chunks() if res.num_rows else res
-        new = [res.column(j).chunk(0) if res.column(j).num_chunks == 1
-               else res.column(j).combine_chunks()
-               for j in range(len(self.needed), res.num_columns)]
-        return pa.RecordBatch.from_arrays([batch.column(n) for n in self.kept] + new,
+        new = [_one_chunk(res.column(j)) for j in range(len(self.needed), res.num_columns)]
+        return pa.RecordBatch.from_arrays([batch.column(i) for i in self.kept] + new,
                                           schema=self.out_schema)
+
+
+def _one_chunk(col: pa.ChunkedArray) -> pa.Array:
+    return col.chunk(0) if col.num_chunks == 1 else col.combine_chunks()
