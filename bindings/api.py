@@ -52,7 +52,8 @@ def _kernel_launch():
     """Serialise kernel launches when numba's threading layer is not thread-safe.
 
     ``omp`` and ``tbb`` take parallel launches from several Python threads at once;
-    ``workqueue`` aborts the process, so under it one call at a time runs the kernels.
+    ``workqueue`` aborts the process on concurrent launches, so under it one call at a
+    time runs the kernels.
     """
     if _workqueue is False or not _probe_threading_layer():
         yield
@@ -217,16 +218,9 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
     mask = _greeks.greek_mask(names, plan.model) if names else 0
 
     def solve(premium):
-        if not names or _workqueue:
+        if not names:
             iv, st = _iv_kernel(plan, premium, und, K, T, D, q, cp)
-            if not names:
-                return iv, None, st
-            # The fused sweep loop launches nested loops, which abort the process under
-            # the workqueue layer: there, the Greeks are computed after the vols instead
-            # (same values up to FMA contraction; the fused pass is bit-identical to
-            # itself under every other layer).
-            g, _ = _greek_values(plan, names, und, K, T, D, q, _readonly(iv), cp)
-            return iv, g, st
+            return iv, None, st
         return _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask)
 
     if plan.quote == "premium":

@@ -4,7 +4,7 @@ Eight threads run price, implied_vol, greeks and sweep on different tables at th
 time, several rounds, some with one numba thread and some with two: nothing crashes and
 every result equals the serial run bit for bit.  Under numba's ``workqueue`` threading
 layer (not thread-safe: concurrent launches abort the process) the bindings serialise
-kernel launches; a child process checks that too.
+kernel launches; a child process checks that, and that its bits equal this layer's.
 """
 
 import os
@@ -68,7 +68,7 @@ _CHILD = textwrap.dedent("""
     sys.path.insert(0, {tests!r})
     from test_determinism import case_input, golden_inputs, output_digest
     jobs = []
-    for k, name in enumerate(["price_bsm", "iv_bsm", "greeks_delta_vega_desk", "sweep_bsm"]):
+    for k, name in enumerate({cases!r}):
         fn, kw, inp = case_input(name, golden_inputs(3000, seed=100 + k))
         jobs.append((fn, kw, inp, output_digest(inp, fn(inp, **kw))))
     assert numba.threading_layer() == "workqueue", numba.threading_layer()
@@ -83,13 +83,21 @@ _CHILD = textwrap.dedent("""
     [t.start() for t in threads]
     [t.join() for t in threads]
     print("mismatches", bad)
+    print("digests", " ".join(j[3] for j in jobs))
     sys.exit(1 if bad else 0)
 """)
+_CHILD_CASES = ["price_bsm", "iv_bsm", "greeks_delta_vega_desk", "sweep_bsm"]
 
 
 def test_workqueue_layer_is_serialised_not_aborted():
     env = dict(os.environ, NUMBA_THREADING_LAYER="workqueue")
-    code = _CHILD.format(tests=os.path.dirname(os.path.abspath(__file__)))
+    code = _CHILD.format(tests=os.path.dirname(os.path.abspath(__file__)), cases=_CHILD_CASES)
     r = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True,
                        timeout=600)
     assert r.returncode == 0, r.stdout + r.stderr[-2000:]
+    # and the bits are those of this process's threading layer
+    here = []
+    for k, name in enumerate(_CHILD_CASES):
+        fn, kw, inp = case_input(name, golden_inputs(3000, seed=100 + k))
+        here.append(output_digest(inp, fn(inp, **kw)))
+    assert r.stdout.split("digests ")[1].split() == here
