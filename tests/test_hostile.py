@@ -484,3 +484,18 @@ def test_cli_schema_damage_is_a_one_line_error_naming_the_column(damage, word, t
     if damage != "dup":  # pyarrow refuses such a Parquet file before volsweep sees a schema
         assert word in err[0]
     assert not dst.exists()
+
+
+def test_cli_sweep_of_hostile_rows_equals_the_in_memory_sweep(tmp_path):
+    from test_fuzz import hostile_table
+
+    t, _ = hostile_table(n=20_000, seed=77)
+    src, dst = tmp_path / "h.parquet", tmp_path / "hs.parquet"
+    pq.write_table(t.drop_columns(["vol"]), src)
+    assert cli_main(["sweep", str(src), "-o", str(dst), "--quotes", "bid-ask", "--greeks",
+                     ",".join(SWEEP_FOUR), "--batch-rows", "777"]) == 0
+    inp = pq.read_table(src)
+    out = pq.read_table(dst)
+    check_invariants(inp, out, ["iv"], ["iv_spread_uncertainty", *SWEEP_FOUR])
+    ref = volsweep.sweep(inp.drop_columns(["premium"]), which=SWEEP_FOUR)
+    assert same_table(out.select(ref.column_names), ref)
