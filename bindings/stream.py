@@ -523,10 +523,11 @@ def run(source: Source, dst: str, transform, out_schema: pa.Schema, *, overwrite
     check_output(dst, overwrite)
     rows, counts = 0, {}
     t0 = time.perf_counter()
+    batches = source.batches()
     try:
         with AtomicParquetWriter(dst, out_schema, compression, dictionary,
                                  background=True) as writer:
-            for batch in source.batches():
+            for batch in batches:
                 out = transform(batch)
                 if out.schema != out_schema:
                     raise StreamError(f"cannot read {source.path}: the schema changes between "
@@ -541,6 +542,8 @@ def run(source: Source, dst: str, transform, out_schema: pa.Schema, *, overwrite
                     progress.update(batch.num_rows)
             writer.commit()
     finally:
+        if hasattr(batches, "close"):
+            batches.close()       # stops the reader thread now, not at garbage collection
         if progress is not None:
             progress.close()      # before any error line, and on Ctrl-C
     return RunResult(rows, time.perf_counter() - t0, counts)

@@ -328,3 +328,28 @@ def test_error_folder_whose_files_differ(snap, tmp_path, capsys):
     line = _one_error_line(capsys)
     assert "b.parquet" in line and "'strike'" in line
     assert not out.exists()
+
+
+def test_ctrl_c_on_the_command_line_leaves_nothing(snap, tmp_path):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    big = tmp_path / "big.parquet"
+    with pq.ParquetWriter(big, snap.schema) as w:
+        for _ in range(120):                    # 1.44M rows: a second or more to sweep
+            w.write_table(snap)
+    out = tmp_path / "o.parquet"
+    p = subprocess.Popen([sys.executable, "-m", "volsweep", "sweep", str(big), "-o", str(out),
+                          "--quotes", "premium", "--batch-rows", "20000"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while not list(tmp_path.glob(".o.parquet.tmp-*")) and p.poll() is None \
+            and time.monotonic() < deadline:
+        time.sleep(0.005)
+    p.send_signal(signal.SIGINT)                # the run has started writing
+    _, err = p.communicate(timeout=120)
+    assert p.returncode == 130, err
+    assert err.strip().splitlines()[-1] == "volsweep: interrupted"
+    assert not out.exists() and sorted(os.listdir(tmp_path)) == ["big.parquet"]
