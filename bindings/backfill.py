@@ -34,6 +34,7 @@ import pyarrow.parquet as pq
 from . import stream as _stream
 
 PART_NAME = "part-0.parquet"
+CONNECT_TIMEOUT = "10s"      # to reach a running scheduler given by address
 
 
 @dataclass
@@ -263,7 +264,7 @@ def _connect(distributed, scheduler, n_workers):
         return scheduler, None
     if scheduler is not None:
         try:
-            return distributed.Client(scheduler, timeout="10s"), None
+            return distributed.Client(scheduler, timeout=CONNECT_TIMEOUT), None
         except (OSError, TimeoutError) as exc:
             raise _stream.StreamError(f"cannot reach the Dask scheduler at {scheduler}: "
                                       f"{_stream._one_line(exc)}") from None

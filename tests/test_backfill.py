@@ -170,7 +170,9 @@ def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
             distributed.Client(cluster) as client:
         client.register_plugin(_KillOnSecondTask(marker))
         before = set(client.run(os.getpid).values())
-        res = bf.backfill(src, dst, scheduler=client, batch_rows=1000, **OPTS)
+        # by address, as `volsweep backfill --scheduler ADDRESS` does
+        res = bf.backfill(src, dst, scheduler=cluster.scheduler_address, batch_rows=1000,
+                          **OPTS)
         after = set(client.run(os.getpid).values())
     killed = int(open(marker).read())
     assert killed in before and killed not in after          # a worker really died
@@ -196,3 +198,13 @@ def test_cli_backfill_and_errors(first_run, tmp_path, capsys):
     assert main(["backfill", first_run["src"], os.path.join(first_run["src"], "out"),
                  "--quotes", "premium"]) == 2
     assert "inside" in capsys.readouterr().err
+
+
+def test_unreachable_scheduler_is_a_one_line_error(tmp_path, capsys, monkeypatch):
+    monkeypatch.setattr(bf, "CONNECT_TIMEOUT", "1s")
+    src = tmp_path / "src"
+    _history(src, rows=200)
+    assert main(["backfill", str(src), str(tmp_path / "dst"), "--quotes", "premium",
+                 "--scheduler", "tcp://127.0.0.1:9"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("volsweep: error: cannot reach the Dask")
