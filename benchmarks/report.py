@@ -55,11 +55,11 @@ def _rounds(runs: dict, repeats: int) -> dict:
 
 def _kernel_runs(model: str, d: dict) -> dict:
     n = d["K"].shape[0]
-    m = greeks.ALL_GREEKS
+    m = greeks.greek_mask(None, model)   # all the model has (Black-76: no div_rho)
     U = d["F"] if model == "black76" else d["spot"]
     cols = (U, d["K"], d["T"], d["D"]) + (() if model == "black76" else (d["q"],))
     p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
-    out = np.empty((greeks.N_GREEKS, n))
+    out = np.empty((bin(m).count("1"), n))
     fp, fi, fg, fs = ((black.black76_price, implied.black76_iv, greeks.black76_greeks,
                        sweep.black76_sweep) if model == "black76" else
                       (black.bsm_price, implied.bsm_iv, greeks.bsm_greeks, sweep.bsm_sweep))
@@ -212,8 +212,8 @@ volsweep.warmup(which=None, sweep=False)
 found = {}
 loops = {"black76 price": black._black76_price_rows, "bsm price": black._bsm_price_rows,
          "black76 iv": implied._black76_iv_rows, "bsm iv": implied._bsm_iv_rows,
-         "black76 greeks": greeks._kernel("black76", greeks.ALL_GREEKS)[0],
-         "bsm greeks": greeks._kernel("bsm", greeks.ALL_GREEKS)[0]}
+         "black76 greeks": greeks._kernel("black76", greeks.greek_mask(None, "black76"))[0],
+         "bsm greeks": greeks._kernel("bsm", greeks.greek_mask(None, "bsm"))[0]}
 for name, fn in loops.items():
     asm = "\\n".join(fn.inspect_asm().values())
     packed = len(re.findall(r"\\bv(?:fmadd|fmsub|fnmadd|mul|add|sub|div)\\w*pd\\s+%[yz]mm", asm))
