@@ -20,8 +20,6 @@ noisy).
 
 import argparse
 import functools
-import statistics
-import time
 
 import numba
 import numpy as np
@@ -29,6 +27,7 @@ import pytest
 from numba import prange
 from scipy.special import ndtr
 
+from benchmarks._timing import median_times
 from volsweep.kernel import black, greeks
 from volsweep.kernel._jit import loop
 
@@ -134,17 +133,6 @@ def test_greeks(benchmark, model, impl, n):
 
 # ---------------------------------------------------------------- script
 
-def _median_times(runs, repeats):
-    """Median wall time of each callable; the callables take turns, so drift hits all."""
-    times = {k: [] for k in runs}
-    for _ in range(repeats):
-        for k, fn in runs.items():
-            t0 = time.perf_counter()
-            fn()
-            times[k].append(time.perf_counter() - t0)
-    return {k: statistics.median(v) for k, v in times.items()}
-
-
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=2_000_000)
@@ -168,7 +156,7 @@ def main(argv=None):
                 runs = {impl: _runner(model, impl, d) for impl in impls}
                 for fn in runs.values():
                     fn()  # JIT warm-up
-                t = _median_times(runs, args.repeats)
+                t = median_times(runs, args.repeats)
                 for impl in impls:
                     print(f"{model:8} {impl:6} {th if impl != 'numpy' else 1:>7} "
                           f"{t[impl]:>10.4f} {n / t[impl] / 1e6:>14.1f} "

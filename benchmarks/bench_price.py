@@ -15,8 +15,6 @@ Speed is reported as ratios measured in one run (the machines are shared and noi
 
 import argparse
 import functools
-import statistics
-import time
 
 import numba
 import numpy as np
@@ -24,6 +22,7 @@ import pytest
 from numba import prange
 from scipy.special import ndtr
 
+from benchmarks._timing import median_times
 from volsweep.kernel import black
 from volsweep.kernel._jit import loop
 
@@ -110,17 +109,6 @@ def test_price(benchmark, model, impl, n):
 
 # ---------------------------------------------------------------- script
 
-def _median_times(runs, repeats):
-    """Median wall time of each callable; the callables take turns, so drift hits all."""
-    times = {k: [] for k in runs}
-    for _ in range(repeats):
-        for k, fn in runs.items():
-            t0 = time.perf_counter()
-            fn()
-            times[k].append(time.perf_counter() - t0)
-    return {k: statistics.median(v) for k, v in times.items()}
-
-
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=2_000_000)
@@ -139,14 +127,14 @@ def main(argv=None):
         for model in ("black76", "bsm"):
             numpy_run = _runner(model, "numpy", d)
             numpy_run()
-            t_np = _median_times({"numpy": numpy_run}, args.repeats)["numpy"]
+            t_np = median_times({"numpy": numpy_run}, args.repeats)["numpy"]
             print(f"{model:8} {'numpy':6} {1:>7} {t_np:>10.4f} {n / t_np / 1e6:>14.1f}")
             for th in thread_counts:
                 numba.set_num_threads(th)
                 runs = {impl: _runner(model, impl, d) for impl in ("ours", "floor")}
                 for fn in runs.values():
                     fn()  # JIT warm-up
-                t = _median_times(runs, args.repeats)
+                t = median_times(runs, args.repeats)
                 for impl in ("ours", "floor"):
                     print(f"{model:8} {impl:6} {th:>7} {t[impl]:>10.4f} "
                           f"{n / t[impl] / 1e6:>14.1f}")

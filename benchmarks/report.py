@@ -35,22 +35,14 @@ import numba
 import numpy as np
 
 from benchmarks import bench_greeks, bench_implied, bench_price
+from benchmarks._timing import median_times
 from volsweep.kernel import black, greeks, implied, sweep
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 
 def _rounds(runs: dict, repeats: int) -> dict:
-    """Median seconds of each callable; one warm-up each, then they take turns."""
-    for fn in runs.values():
-        fn()
-    times = {k: [] for k in runs}
-    for _ in range(repeats):
-        for k, fn in runs.items():
-            t0 = time.perf_counter()
-            fn()
-            times[k].append(time.perf_counter() - t0)
-    return {k: statistics.median(v) for k, v in times.items()}
+    return median_times(runs, repeats, warmup=True)
 
 
 def _kernel_runs(model: str, d: dict) -> dict:
