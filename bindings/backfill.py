@@ -242,8 +242,9 @@ def _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress) -
     try:
         futures = client.map(sweep_partition, todo, dst_root=dst, options=options,
                              batch_rows=batch_rows, pure=False)
-        for fut in distributed.as_completed(futures):
-            results.append(fut.result())
+        # with_results: gathered through this client even when the process has another
+        for _, result in distributed.as_completed(futures, with_results=True):
+            results.append(result)
             if progress is not None:
                 progress.update(1)
     finally:
@@ -277,7 +278,7 @@ def _connect(distributed, scheduler, n_workers):
     # sets it in our own os.environ to do so, which we undo once the cluster is up.
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
         cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                           dashboard_address=None, env=env, silence_logs=40)
+                                           dashboard_address=":0", env=env, silence_logs=50)
     return distributed.Client(cluster), cluster
 
 

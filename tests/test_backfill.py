@@ -166,7 +166,7 @@ def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
     marker = str(tmp_path / "killed")
     env = bf.worker_environ()
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None, env=env, silence_logs=50) as cluster, \
+                                  dashboard_address=":0", env=env, silence_logs=50) as cluster, \
             distributed.Client(cluster) as client:
         client.register_plugin(_KillOnSecondTask(marker))
         before = set(client.run(os.getpid).values())
@@ -208,3 +208,16 @@ def test_unreachable_scheduler_is_a_one_line_error(tmp_path, capsys, monkeypatch
                  "--scheduler", "tcp://127.0.0.1:9"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("volsweep: error: cannot reach the Dask")
+
+
+def test_bad_partition_is_a_one_line_error_naming_it(tmp_path, capsys):
+    src = tmp_path / "src"
+    paths = _history(src, rows=300)
+    bad = paths[3]
+    pq.write_table(pq.read_table(bad).drop_columns(["strike"]), bad)
+    dst = tmp_path / "dst"
+    assert main(["backfill", str(src), str(dst), "--quotes", "premium", "--workers", "1"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "date=2031-03-13" in err[0] and "'strike'" in err[0], err
+    assert not os.path.exists(os.path.join(dst, "date=2031-03-13", "part-0.parquet"))
+    assert not [f for d, _, fs in os.walk(dst) for f in fs if f.startswith(".")]
