@@ -353,3 +353,15 @@ def test_ctrl_c_on_the_command_line_leaves_nothing(snap, tmp_path):
     assert p.returncode == 130, err
     assert err.strip().splitlines()[-1] == "volsweep: interrupted"
     assert not out.exists() and sorted(os.listdir(tmp_path)) == ["big.parquet"]
+
+
+def test_importing_volsweep_does_not_import_dask():
+    import subprocess
+    import sys
+
+    code = ("import sys, volsweep, volsweep.cli, volsweep.stream; "
+            "assert callable(volsweep.backfill); "
+            "print(sorted(m for m in ('dask', 'distributed') if m in sys.modules))")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.strip() == "[]"
