@@ -7,7 +7,8 @@ partition's rows, in order (its files in name order), with implied vols and Gree
 
 Commit protocol: a task writes a hidden temporary file in the partition's folder, fsyncs
 it and renames it to ``part-0.parquet``; the rename is the commit.  A partition whose
-``part-0.parquet`` exists with the source's row count is complete and is skipped, so a
+``part-0.parquet`` exists with the source's row count and was made with the same options
+(recorded in its schema metadata) is complete and is skipped, so a
 re-run after a crash (or a task Dask runs twice after losing a worker) resumes without
 duplicating anything.  Hidden temporary files left by a killed worker are ignored by
 dataset readers and removed by the next run.
@@ -87,16 +88,20 @@ def _source_rows(files) -> int | None:
         return None
 
 
-def _complete_rows(target: str, files) -> int | None:
-    """Rows of a committed ``target`` if it is complete for ``files``, else None."""
+def _complete_rows(target: str, files, stamp: bytes) -> int | None:
+    """Rows of a committed ``target`` if it is complete for ``files`` and was made with the
+    same options (``stamp``), else None (then it is made again and replaced atomically)."""
     if not os.path.exists(target):
         return None
     try:
-        have = pq.read_metadata(target).num_rows
-    except Exception:   # unreadable: redo it (the new file replaces it atomically)
+        md = pq.read_metadata(target)
+        made_with = (pq.read_schema(target).metadata or {}).get(_stream.SWEEP_STAMP_KEY)
+    except Exception:   # unreadable: redo it
+        return None
+    if made_with != stamp:
         return None
     want = _source_rows(files)
-    return have if want is None or want == have else None
+    return md.num_rows if want is None or want == md.num_rows else None
 
 
 def _limit_threads() -> int:
@@ -135,15 +140,15 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     threads = _limit_threads()
     out_dir = os.path.normpath(os.path.join(dst_root, part.rel))
     target = os.path.join(out_dir, PART_NAME)
-    done = _complete_rows(target, part.files)
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0)
-    if done is not None:
-        return dict(info, state="skipped", rows=done, statuses={})
-    os.makedirs(out_dir, exist_ok=True)
     try:
         source = _stream.open_input(os.path.dirname(part.files[0]), batch_rows,
                                     files=part.files, partitioning=None)
         plan = _stream.SweepPlan.build(source.schema, **options)
+        done = _complete_rows(target, part.files, plan.stamp)
+        if done is not None:
+            return dict(info, state="skipped", rows=done, statuses={})
+        os.makedirs(out_dir, exist_ok=True)
         before = _misses()
         res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True,
                           dictionary=plan.dictionary)
@@ -196,7 +201,7 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
                    quotes=quotes, keep=keep)
     first = _stream.open_input(parts[0].files[0], batch_rows, files=parts[0].files,
                                partitioning=None)
-    _stream.SweepPlan.build(first.schema, **options)   # schema errors now, not on a worker
+    plan = _stream.SweepPlan.build(first.schema, **options)   # schema errors now
     os.makedirs(dst, exist_ok=True)
     _clean_temps(dst, parts)
     # complete partitions are skipped here (no cluster at all for a finished backfill) and
@@ -204,7 +209,7 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
     results = []
     todo = []
     for part in parts:
-        rows = _complete_rows(os.path.join(dst, part.rel, PART_NAME), part.files)
+        rows = _complete_rows(os.path.join(dst, part.rel, PART_NAME), part.files, plan.stamp)
         if rows is None:
             todo.append(part)
         else:

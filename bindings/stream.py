@@ -20,6 +20,7 @@ by batch, and write Parquet atomically.
 from __future__ import annotations
 
 import glob
+import json
 import os
 import queue
 import secrets
@@ -559,6 +560,15 @@ def run(source: Source, dst: str, transform, out_schema: pa.Schema, *, overwrite
 
 # ----------------------------------------------------------------- sweep columns
 QUOTE_CHOICES = ("auto", "premium", "bid-ask")
+SWEEP_STAMP_KEY = b"volsweep.sweep"
+
+
+def sweep_stamp(options: dict) -> bytes:
+    """The options a sweep ran with, as stored in its output's schema metadata."""
+    import volsweep
+
+    return json.dumps(dict(options, version=volsweep.__version__), sort_keys=True,
+                      default=str).encode()
 
 
 @dataclass
@@ -625,13 +635,19 @@ class SweepPlan:
         outputs = probe.schema.names[len(needed):]
         kept_schema = pa.schema([schema.field(i) for i in kept])
         check_no_clash(kept_schema, outputs)
+        meta = dict(schema.metadata or {})
+        meta[SWEEP_STAMP_KEY] = sweep_stamp(dict(options, quotes=quotes, keep=keep))
         out_schema = pa.schema(list(kept_schema) + [probe.schema.field(n) for n in outputs],
-                               metadata=schema.metadata)
+                               metadata=meta)
         return cls(needed, kept, out_schema, len(outputs), options)
 
     @property
     def dictionary(self) -> list:
         return dictionary_columns(self.out_schema)
+
+    @property
+    def stamp(self) -> bytes:
+        return self.out_schema.metadata[SWEEP_STAMP_KEY]
 
     def transform(self, batch: pa.RecordBatch) -> pa.RecordBatch:
         import volsweep

@@ -221,3 +221,19 @@ def test_bad_partition_is_a_one_line_error_naming_it(tmp_path, capsys):
     assert len(err) == 1 and "date=2031-03-13" in err[0] and "'strike'" in err[0], err
     assert not os.path.exists(os.path.join(dst, "date=2031-03-13", "part-0.parquet"))
     assert not [f for d, _, fs in os.walk(dst) for f in fs if f.startswith(".")]
+
+
+def test_other_options_recompute_instead_of_skipping(tmp_path):
+    src, dst = tmp_path / "src", tmp_path / "dst"
+    paths = _history(src, rows=300)[:1]
+    for p in _history(src, rows=300)[1:]:
+        os.remove(p)
+        os.rmdir(os.path.dirname(p))
+    first = bf.backfill(src, dst, n_workers=1, **OPTS)
+    again = bf.backfill(src, dst, n_workers=1, units="desk", **OPTS)   # same columns
+    assert (first.written, again.written, again.skipped) == (1, 1, 0)
+    out = pq.read_table(os.path.join(dst, "date=2031-03-10", "part-0.parquet"))
+    source = stream.open_input(paths[0])
+    plan = stream.SweepPlan.build(source.schema, units="desk", **OPTS)
+    assert out.schema.metadata[stream.SWEEP_STAMP_KEY] == plan.stamp
+    assert bf.backfill(src, dst, units="desk", **OPTS).skipped == 1
