@@ -54,6 +54,7 @@ class BackfillResult:
     seconds: float
     statuses: dict = field(default_factory=dict)
     workers: list = field(default_factory=list)    # per task: (pid, numba threads, compiled)
+    kernels: set = field(default_factory=set)      # kernel source hashes the tasks ran
 
     @property
     def rows(self) -> int:
@@ -140,7 +141,10 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     threads = _limit_threads()
     out_dir = os.path.normpath(os.path.join(dst_root, part.rel))
     target = os.path.join(out_dir, PART_NAME)
-    info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0)
+    from volsweep.kernel._cache import kernel_source_hash
+
+    info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
+                kernel=kernel_source_hash().hex()[:16])
     try:
         source = _stream.open_input(os.path.dirname(part.files[0]), batch_rows,
                                     files=part.files, partitioning=None)
@@ -231,7 +235,8 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
         partitions=len(parts), written=len(written), skipped=len(skipped),
         rows_written=sum(r["rows"] for r in written), rows_skipped=sum(r["rows"] for r in skipped),
         seconds=time.perf_counter() - t0, statuses=statuses,
-        workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r])
+        workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r],
+        kernels={r["kernel"] for r in results if "kernel" in r})
 
 
 def _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress) -> list:

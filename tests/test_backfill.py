@@ -104,6 +104,11 @@ def test_workers_run_one_numba_thread(first_run):
 def test_workers_load_kernels_from_cache(first_run):
     # each task counts the volsweep kernels its process compiled during the task
     # (numba dispatcher cache misses); the parent process compiled or loaded them first
+    from volsweep.kernel._cache import kernel_source_hash
+
+    if first_run["res"].kernels != {kernel_source_hash().hex()[:16]}:
+        pytest.skip("kernel/ was edited while the test ran: the workers imported other "
+                    "kernel sources than this process, so they had to compile")
     assert sum(compiled for _, _, compiled in first_run["res"].workers) == 0
 
 
