@@ -11,14 +11,22 @@ STATUS_VOCABULARY = pa.array(_status.NAMES, type=pa.string())
 STATUS_TYPE = pa.dictionary(pa.int8(), pa.string())
 
 
-def float_column(values: np.ndarray, valid: np.ndarray) -> pa.Array:
-    """float64 Arrow array over ``values`` (no copy), null where ``valid`` is False."""
-    n = len(values)
-    if valid.all():
-        return pa.Array.from_buffers(pa.float64(), n, [None, pa.py_buffer(values)])
-    bitmap = np.packbits(valid, bitorder="little")
-    return pa.Array.from_buffers(pa.float64(), n, [pa.py_buffer(bitmap), pa.py_buffer(values)],
-                                 null_count=int(n - np.count_nonzero(valid)))
+def validity_buffer(valid: np.ndarray):
+    """(Arrow validity bitmap or None when every row is valid, null count) of ``valid``;
+    computed once, it may be shared by several columns of one batch."""
+    n = len(valid)
+    n_valid = int(np.count_nonzero(valid))
+    if n_valid == n:
+        return None, 0
+    return pa.py_buffer(np.packbits(valid, bitorder="little")), n - n_valid
+
+
+def float_column(values: np.ndarray, valid: np.ndarray, validity=None) -> pa.Array:
+    """float64 Arrow array over ``values`` (no copy), null where ``valid`` is False
+    (``validity``: the precomputed ``validity_buffer(valid)``)."""
+    bitmap, nulls = validity_buffer(valid) if validity is None else validity
+    return pa.Array.from_buffers(pa.float64(), len(values), [bitmap, pa.py_buffer(values)],
+                                 null_count=nulls)
 
 
 def status_column(codes: np.ndarray) -> pa.DictionaryArray:

@@ -24,7 +24,8 @@ from volsweep.kernel._jit import BLOCK as _BLOCK
 
 from ._columns import ColumnPlan, _readonly, check_model
 from ._input import as_batches
-from ._output import append, check_no_clash, float_column, output_schema, status_column
+from ._output import (append, check_no_clash, float_column, output_schema, status_column,
+                      validity_buffer)
 
 
 _LAUNCH_LOCK = threading.Lock()
@@ -62,20 +63,24 @@ def _kernel_launch():
         yield
 
 
-def _finite_or_out_of_range(values: np.ndarray, st: np.ndarray) -> None:
-    """A row whose value is not a finite double (overflow) gets status out_of_range."""
-    bad = (st == 0) & ~np.isfinite(values)
-    if bad.any():
-        st[bad] = _status.OUT_OF_RANGE
-        values[bad] = np.nan
-
-
 def _ok_column(values: np.ndarray, ok: np.ndarray) -> pa.Array:
     """A secondary output (Greek, spread uncertainty): null where the row is not ok, and
     null where its value is not a finite double (an infinite limit, an overflow)."""
     valid = np.isfinite(values)
     valid &= ok
     return float_column(values, valid)
+
+
+def _greek_columns(names, g, ok, n_nonfinite) -> dict:
+    """Greek columns, null where the row is not ok or the Greek is not finite.
+
+    The kernels count the ok rows with a non-finite Greek; when there are none (the usual
+    case) every column shares the validity of the row statuses and no column is scanned.
+    """
+    if n_nonfinite:
+        return {name: _ok_column(g[j], ok) for j, name in enumerate(names)}
+    validity = validity_buffer(ok)
+    return {name: float_column(g[j], ok, validity) for j, name in enumerate(names)}
 
 
 def _run(data, plan_kwargs, outputs, compute) -> pa.Table:
@@ -156,7 +161,6 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
         else:
             _black.black76_price(und, K, T, D, vol, cp, p, st)
         _input_priority(plan, batch, und, K, T, q, cp, vol, st)
-        _finite_or_out_of_range(p, st)
         return {"price": float_column(p, st == 0), "status": status_column(st)}
 
     return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
@@ -174,7 +178,6 @@ def _iv_kernel(plan, premium, und, K, T, D, q, cp):
         _implied.bsm_iv(premium, und, K, T, D, q, cp, iv, st)
     else:
         _implied.black76_iv(premium, und, K, T, D, cp, iv, st)
-    _finite_or_out_of_range(iv, st)
     return iv, st
 
 
@@ -203,49 +206,49 @@ def _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask):
     out = np.empty((bin(mask).count("1"), n))
     st = np.empty(n, np.int8)
     if plan.model == "bsm":
-        _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
+        n_nonfinite = _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
     else:
-        _sweep.black76_sweep(premium, und, K, T, D, cp, mask, iv, out, st)
-    _finite_or_out_of_range(iv, st)
-    return iv, out, st
+        n_nonfinite = _sweep.black76_sweep(premium, und, K, T, D, cp, mask, iv, out, st)
+    return iv, (out, n_nonfinite), st
 
 
 def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
     """Implied-vol outputs of one batch, with the Greeks in ``names`` at the (mid) vol.
 
-    Returns (columns, Greeks array in raw units or None, mid status).
+    Returns (columns, Greeks array in raw units or None, mid status, number of ok rows
+    with a non-finite Greek).
     """
     mask = _greeks.greek_mask(names, plan.model) if names else 0
 
     def solve(premium):
         if not names:
             iv, st = _iv_kernel(plan, premium, und, K, T, D, q, cp)
-            return iv, None, st
+            return iv, (None, 0), st
         return _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask)
 
     if plan.quote == "premium":
-        iv, g, st = solve(plan.floats(batch, "premium"))
+        iv, (g, n_nonfinite), st = solve(plan.floats(batch, "premium"))
         _input_priority(plan, batch, und, K, T, q, cp, None, st)
-        return {"iv": float_column(iv, st == 0)}, g, st
+        return {"iv": float_column(iv, st == 0)}, g, st, n_nonfinite
     bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
     mid, half_spread = _mid_and_half_spread(bid, ask)
     iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
     iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
-    iv_m, g, st_m = solve(mid)
+    iv_m, (g, n_nonfinite), st_m = solve(mid)
     _input_priority(plan, batch, und, K, T, q, cp, None, st_b, st_a, st_m)
     _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
     if "vega" in names:
         vega = g[names.index("vega")]
     else:
         # read-only like every kernel input: the specialisation greeks() already compiled
-        (vega,), _ = _greek_values(plan, ("vega",), und, K, T, D, q, _readonly(iv_m), cp)
+        (vega,), _, _ = _greek_values(plan, ("vega",), und, K, T, D, q, _readonly(iv_m), cp)
     with np.errstate(all="ignore"):
         unc = half_spread / vega
     ok = st_m == 0
     cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
             "iv": float_column(iv_m, ok), "iv_spread_uncertainty": _ok_column(unc, ok),
             "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
-    return cols, g, st_m
+    return cols, g, st_m, n_nonfinite
 
 
 def _mid_and_half_spread(bid, ask):
@@ -279,7 +282,7 @@ def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=
 
     def compute(plan, batch):
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        cols, _, st = _iv_columns(plan, batch, und, K, T, D, q, cp)
+        cols, _, st, _ = _iv_columns(plan, batch, und, K, T, D, q, cp)
         cols["status"] = status_column(st)
         return cols
 
@@ -288,18 +291,19 @@ def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=
 
 
 def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
-    """Greeks named in ``which`` (already validated) -> (out[n_req, n], status)."""
+    """Greeks named in ``which`` (already validated) -> (out[n_req, n], status, number of
+    ok rows with a non-finite Greek)."""
     mask = _greeks.greek_mask(which, plan.model)
     n = len(K)
     out = np.empty((bin(mask).count("1"), n))
     st = np.empty(n, np.int8)
     if plan.model == "bsm":
-        _greeks.bsm_greeks(und, K, T, D, q, vol, cp, mask, out, st)
+        n_nonfinite = _greeks.bsm_greeks(und, K, T, D, q, vol, cp, mask, out, st)
     else:
-        _greeks.black76_greeks(und, K, T, D, vol, cp, mask, out, st)
+        n_nonfinite = _greeks.black76_greeks(und, K, T, D, vol, cp, mask, out, st)
     if units == "desk":
         out *= _greeks.desk_factors(mask)[:, None]
-    return out, st
+    return out, st, n_nonfinite
 
 
 def _greek_list(which, model) -> tuple:
@@ -333,10 +337,9 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
     def compute(plan, batch):
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
         vol = plan.floats(batch, "vol")
-        out, st = _greek_values(plan, names, und, K, T, D, q, vol, cp, units)
+        out, st, n_nonfinite = _greek_values(plan, names, und, K, T, D, q, vol, cp, units)
         _input_priority(plan, batch, und, K, T, q, cp, vol, st)
-        ok = st == 0
-        cols = {name: _ok_column(out[j], ok) for j, name in enumerate(names)}
+        cols = _greek_columns(names, out, st == 0, n_nonfinite)
         cols["status"] = status_column(st)
         return cols
 
@@ -357,12 +360,10 @@ def sweep(data, model: str = "bsm", which=None, units: str = "raw",
 
     def compute(plan, batch):
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        cols, g, st = _iv_columns(plan, batch, und, K, T, D, q, cp, names)
+        cols, g, st, n_nonfinite = _iv_columns(plan, batch, und, K, T, D, q, cp, names)
         if units == "desk":
             g *= _greeks.desk_factors(_greeks.greek_mask(names, plan.model))[:, None]
-        ok = st == 0
-        for j, name in enumerate(names):
-            cols[name] = _ok_column(g[j], ok)
+        cols.update(_greek_columns(names, g, st == 0, n_nonfinite))
         cols["status"] = status_column(st)
         return cols
 

@@ -148,6 +148,7 @@ def _black76_price_rows(a, e, F, K, T, D, vol, cp, price, status):
         st = input_status(f, k, tt, D[i], v, cp[i])
         s = v * math.sqrt(tt if tt > 0.0 else 0.0)
         p = black_price(f if f > 0.0 else 1.0, k if k > 0.0 else 1.0, s, D[i], float(cp[i]))
+        st = S.OUT_OF_RANGE if (st == S.OK and not (abs(p) < INF)) else st  # overflow
         price[i] = p if st == S.OK else NAN
         status[i] = st
 
@@ -161,7 +162,8 @@ def _bsm_price_rows(a, e, spot, K, T, D, q, vol, cp, price, status):
         ok = st == S.OK
         p = black_price(f if ok else 1.0, K[i] if ok else 1.0, s if ok else 1.0, D[i],
                         float(cp[i]))
-        price[i] = p if ok else NAN
+        st = S.OUT_OF_RANGE if (ok and not (abs(p) < INF)) else st      # overflow
+        price[i] = p if st == S.OK else NAN
         status[i] = st
 
 
@@ -186,6 +188,7 @@ def black76_price(F, K, T, D, vol, cp, price, status):
 
     F, K, T (years), D (discount factor), vol: float64 arrays of one length n; cp: integer
     codes, +1 call, -1 put, 0 missing; price (float64) and status (int8): preallocated.
+    A price that is not a finite double (overflow) gets status out_of_range and NaN.
     """
     F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
     n = F.shape[0]

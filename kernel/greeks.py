@@ -314,39 +314,58 @@ def _bsm_row(spot, K, T, D, q, vol, cp, i):
 def _store(dst, j, g, ok, sl):
     # dst[sl[k], j] = Greek k for each requested k (sl[k] >= 0).  sl is a compile-time
     # constant of the specialised loop, so the tests fold away and unrequested Greeks
-    # are never computed.
+    # are never computed.  Returns whether the row is ok with a requested Greek that is
+    # not finite (bitwise |, not `or`: no branches in the loop body).
+    bad = False
     if sl[0] >= 0:
         dst[sl[0], j] = g[0] if ok else NAN
+        bad = bad | (not (abs(g[0]) < INF))
     if sl[1] >= 0:
         dst[sl[1], j] = g[1] if ok else NAN
+        bad = bad | (not (abs(g[1]) < INF))
     if sl[2] >= 0:
         dst[sl[2], j] = g[2] if ok else NAN
+        bad = bad | (not (abs(g[2]) < INF))
     if sl[3] >= 0:
         dst[sl[3], j] = g[3] if ok else NAN
+        bad = bad | (not (abs(g[3]) < INF))
     if sl[4] >= 0:
         dst[sl[4], j] = g[4] if ok else NAN
+        bad = bad | (not (abs(g[4]) < INF))
     if sl[5] >= 0:
         dst[sl[5], j] = g[5] if ok else NAN
+        bad = bad | (not (abs(g[5]) < INF))
     if sl[6] >= 0:
         dst[sl[6], j] = g[6] if ok else NAN
+        bad = bad | (not (abs(g[6]) < INF))
     if sl[7] >= 0:
         dst[sl[7], j] = g[7] if ok else NAN
+        bad = bad | (not (abs(g[7]) < INF))
     if sl[8] >= 0:
         dst[sl[8], j] = g[8] if ok else NAN
+        bad = bad | (not (abs(g[8]) < INF))
     if sl[9] >= 0:
         dst[sl[9], j] = g[9] if ok else NAN
+        bad = bad | (not (abs(g[9]) < INF))
     if sl[10] >= 0:
         dst[sl[10], j] = g[10] if ok else NAN
+        bad = bad | (not (abs(g[10]) < INF))
     if sl[11] >= 0:
         dst[sl[11], j] = g[11] if ok else NAN
+        bad = bad | (not (abs(g[11]) < INF))
     if sl[12] >= 0:
         dst[sl[12], j] = g[12] if ok else NAN
+        bad = bad | (not (abs(g[12]) < INF))
     if sl[13] >= 0:
         dst[sl[13], j] = g[13] if ok else NAN
+        bad = bad | (not (abs(g[13]) < INF))
     if sl[14] >= 0:
         dst[sl[14], j] = g[14] if ok else NAN
+        bad = bad | (not (abs(g[14]) < INF))
     if sl[15] >= 0:
         dst[sl[15], j] = g[15] if ok else NAN
+        bad = bad | (not (abs(g[15]) < INF))
+    return ok & bad
 
 
 def _slots(mask):
@@ -366,16 +385,16 @@ def _b76_rows_template(a, e, F, K, T, D, vol, cp, out, status):
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
         st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp, i)
         g = greeks_forward(f, k, tt, d, v, w)
-        _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821 (a global of each copy)
-        status[i] = st
+        flag = _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821 (a global of each copy)
+        status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
 
 
 def _bsm_rows_template(a, e, spot, K, T, D, q, vol, cp, out, status):
     for i in range(np.uint64(a), np.uint64(e)):
         st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
         g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
-        _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821
-        status[i] = st
+        flag = _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821
+        status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
 
 
 def _b76_par_template(F, K, T, D, vol, cp, out, status):
@@ -407,6 +426,15 @@ def _kernel(model, mask):
     return row_loop, par_loop
 
 
+def take_nonfinite_flags(status) -> int:
+    """Clear the rows' non-finite-Greek flags; return how many rows had one."""
+    if status.size == 0 or status.view(np.uint8).max() < S.NONFINITE_GREEK_FLAG:
+        return 0
+    flagged = status >= S.NONFINITE_GREEK_FLAG
+    status[flagged] -= S.NONFINITE_GREEK_FLAG
+    return int(np.count_nonzero(flagged))
+
+
 def _check_mask(mask):
     mask = int(mask)
     if not (0 <= mask <= ALL_GREEKS):
@@ -418,7 +446,9 @@ def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
     """Black-76 Greeks of the rows into ``out[n_requested, n]`` and their ``status``.
 
     F, K, T, D, vol: float64 arrays; cp: int8 (+1 call, -1 put, 0 missing); mask from
-    ``greek_mask``.  Rows whose status is not ok get NaN Greeks.
+    ``greek_mask``.  Rows whose status is not ok get NaN Greeks.  Returns the number of
+    ok rows with a requested Greek that is not finite (the documented infinite limits;
+    0 for ordinary inputs), so a caller can skip checking the outputs when it is 0.
     """
     mask, nsel = _check_mask(mask)
     F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
@@ -427,10 +457,12 @@ def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
     _args.output("out", out, (nsel, n), np.float64)
     _args.output("status", status, (n,), np.int8)
     _args.run(*_kernel("black76", mask), n, F, K, T, D, vol, cp, out, status)
+    return take_nonfinite_flags(status)
 
 
 def bsm_greeks(spot, K, T, D, q, vol, cp, mask, out, status):
-    """BSM Greeks (against spot, continuous yield q) into ``out[n_requested, n]``."""
+    """BSM Greeks (against spot, continuous yield q) into ``out[n_requested, n]``; returns
+    the number of ok rows with a requested Greek that is not finite (as black76_greeks)."""
     mask, nsel = _check_mask(mask)
     spot, K, T, D, q, vol = _args.floats(None, spot, K, T, D, q, vol)
     n = spot.shape[0]
@@ -438,3 +470,4 @@ def bsm_greeks(spot, K, T, D, q, vol, cp, mask, out, status):
     _args.output("out", out, (nsel, n), np.float64)
     _args.output("status", status, (n,), np.int8)
     _args.run(*_kernel("bsm", mask), n, spot, K, T, D, q, vol, cp, out, status)
+    return take_nonfinite_flags(status)

@@ -302,7 +302,9 @@ def _black76_iv_rows(a, e, premium, F, K, T, D, cp, iv_out, status_out):
         s, st2 = black_total_vol(premium[i], f if ok else 1.0, k if ok else 1.0,
                                  dd if ok else 1.0, float(cp[i]) if ok else 1.0)
         st = st2 if ok else st
-        iv_out[i] = s / math.sqrt(tt) if st == S.OK else NAN
+        v = s / math.sqrt(tt)
+        st = S.OUT_OF_RANGE if (st == S.OK and not (v < INF)) else st   # overflow
+        iv_out[i] = v if st == S.OK else NAN
         status_out[i] = st
 
 
@@ -316,7 +318,9 @@ def _bsm_iv_rows(a, e, premium, spot, K, T, D, q, cp, iv_out, status_out):
         s, st3 = black_total_vol(premium[i], f if ok else 1.0, K[i] if ok else 1.0,
                                  dd if ok else 1.0, float(cp[i]) if ok else 1.0)
         st = st3 if ok else st
-        iv_out[i] = s / math.sqrt(tt) if st == S.OK else NAN
+        v = s / math.sqrt(tt)
+        st = S.OUT_OF_RANGE if (st == S.OK and not (v < INF)) else st   # overflow
+        iv_out[i] = v if st == S.OK else NAN
         status_out[i] = st
 
 

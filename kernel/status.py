@@ -38,3 +38,8 @@ NAMES = (
 )
 
 STATUS_DTYPE = np.int8
+
+# Internal flag, never seen outside the kernel: the Greeks row loops add it to an ok row's
+# status when one of its requested Greeks is not finite (an infinite limit such as gamma
+# at the strike with zero vol); the entry points count and clear it.
+NONFINITE_GREEK_FLAG = 64

@@ -59,13 +59,18 @@ def _outputs(n, mask, iv_out, out, status):
 
 
 def black76_sweep(premium, F, K, T, D, cp, mask, iv_out, out, status):
-    """Black-76 implied vol of ``premium`` and the Greeks in ``mask`` at that vol."""
+    """Black-76 implied vol of ``premium`` and the Greeks in ``mask`` at that vol.
+
+    Returns the number of rows with an implied vol and a requested Greek that is not
+    finite (as ``greeks.black76_greeks``).
+    """
     premium, F, K, T, D = _args.floats(None, premium, F, K, T, D)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
-    _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status,
-                             np.empty(n, np.int8))
+    scratch = np.empty(n, np.int8)    # the Greeks' own statuses (the iv's take priority)
+    _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status, scratch)
+    return _greeks.take_nonfinite_flags(scratch)
 
 
 def bsm_sweep(premium, spot, K, T, D, q, cp, mask, iv_out, out, status):
@@ -74,5 +79,6 @@ def bsm_sweep(premium, spot, K, T, D, q, cp, mask, iv_out, out, status):
     n = spot.shape[0]
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
-    _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status,
-                         np.empty(n, np.int8))
+    scratch = np.empty(n, np.int8)
+    _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status, scratch)
+    return _greeks.take_nonfinite_flags(scratch)

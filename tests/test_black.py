@@ -500,3 +500,15 @@ def test_batch_size_and_slices_do_not_change_results(table):
             black.black76_price(*(c[sl] for c in cols), out, ost)  # views, not copies
             assert np.array_equal(_bits(out), _bits(full[sl])), (start, n)
             assert np.array_equal(ost, st[sl]), (start, n)
+
+
+def test_overflowing_price_is_out_of_range_not_inf():
+    # behaviour: a price that is not a finite double is not a value.  A put struck at the
+    # largest double with D > 1 (negative rates) is worth D*K = inf: status out_of_range.
+    big = 1.7976931348623157e308
+    F, K, T, D, vol = (np.array([v, v]) for v in (100.0, big, 1.0, 1.5, 0.2))
+    K[1] = 90.0                                   # an ordinary row beside it
+    price, st = np.empty(2), np.empty(2, np.int8)
+    black.black76_price(F, K, T, D, vol, np.array([-1, -1], np.int8), price, st)
+    assert st[0] == S.OUT_OF_RANGE and np.isnan(price[0])
+    assert st[1] == S.OK and np.isfinite(price[1])

@@ -659,3 +659,28 @@ def test_kernels_of_different_masks_never_mix_in_a_new_process():
         unwritten, vega_diff = r.stdout.split()
         assert int(unwritten) == 0
         assert float(vega_diff) == 0.0      # vega alone == vega within all Greeks
+
+
+def test_entry_points_count_ok_rows_with_a_non_finite_greek():
+    # at the strike with zero vol gamma is +inf (the documented limit); the row stays ok
+    # and the entry point reports it, so callers skip scanning outputs when the count is 0
+    U = np.array([100.0, 100.0, 100.0])
+    K = np.array([100.0, 90.0, 100.0])
+    T, D, q = np.full(3, 1.0), np.ones(3), np.zeros(3)     # BSM: forward == spot
+    vol = np.array([0.0, 0.2, 0.2])
+    cp = np.ones(3, np.int8)
+    for model in ("black76", "bsm"):
+        m = G.greek_mask(None, model)
+        out, st = np.empty((bin(m).count("1"), 3)), np.empty(3, np.int8)
+        if model == "bsm":
+            n_bad = G.bsm_greeks(U, K, T, D, q, vol, cp, m, out, st)
+        else:
+            n_bad = G.black76_greeks(U, K, T, D, vol, cp, m, out, st)
+        assert n_bad == 1 and list(st) == [S.OK] * 3          # flag cleared, row ok
+        assert np.isinf(out[1, 0]) and np.all(np.isfinite(out[:, 1:]))   # gamma at the strike
+        m = G.greek_mask(FEW, model)                            # delta and vega stay finite
+        out2 = np.empty((2, 3))
+        if model == "bsm":
+            assert G.bsm_greeks(U, K, T, D, q, vol, cp, m, out2, st) == 0
+        else:
+            assert G.black76_greeks(U, K, T, D, vol, cp, m, out2, st) == 0
