@@ -78,6 +78,12 @@ class ColumnPlan:
                 raise TypeError(f"columns[{key!r}] must be a column name (str), got {value!r}")
         names = schema.names
         dupes = sorted({n for n in names if names.count(n) > 1})
+        for key, value in columns.items():
+            # a mapping to a column that is not there is a mistake, not a fallback: with
+            # {"premium": "mid"} and no "mid", the quote must not silently become bid/ask
+            if value not in names:
+                raise ValueError(f"columns= maps {key!r} to column {value!r}, which the input "
+                                 "does not have")
         plan = cls(model)
 
         def present(logical):

@@ -311,3 +311,12 @@ def test_greeks_bad_rows_are_null_and_unknown_names_raise():
         volsweep.greeks(_row_table(), which="deltoid")
     with pytest.raises(ValueError, match="units"):
         volsweep.greeks(_row_table(), units="bps")
+
+
+def test_a_mapping_to_a_missing_column_raises_naming_it():
+    # behaviour: {"premium": "mid"} without a "mid" column must not fall back to bid/ask
+    t = pa.table({"spot": [100.0], "strike": [100.0], "expiry_years": [0.5], "rate": [0.02],
+                  "is_call": [True], "bid": [5.0], "ask": [5.2]})
+    with pytest.raises(ValueError, match="'mid'"):
+        volsweep.implied_vol(t, columns={"premium": "mid"})
+    assert volsweep.implied_vol(t).num_rows == 1                     # unmapped: bid/ask
