@@ -144,7 +144,7 @@ def table_section(n: int, repeats: int) -> None:
            ("spot", "strike", "expiry_years", "rate", "div_yield", "true_vol", "premium")}
     cp = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1, -1).astype(np.int8)
     T = col["expiry_years"]
-    D = np.exp(-col["rate"] * T)
+    D = black.discount_factors(col["rate"], T, np.empty(n))   # as the bindings derive it
     args = (col["spot"], col["strike"], T, D, col["div_yield"])
     p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
     out = np.empty((greeks.N_GREEKS, n))

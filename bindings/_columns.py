@@ -29,6 +29,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from volsweep.kernel import black as _black
+
 MODELS = ("bsm", "black76")
 UNDERLYING = {"bsm": "spot", "black76": "forward"}
 KNOWN_NAMES = ("spot", "forward", "strike", "expiry_years", "expiry", "as_of", "rate",
@@ -192,8 +194,7 @@ class ColumnPlan:
         if "discount" in self.source:
             return self.floats(batch, "discount")
         r = self.floats(batch, "rate")
-        with np.errstate(all="ignore"):
-            return _readonly(np.exp(-r * T))
+        return _readonly(_black.discount_factors(r, T, np.empty(len(T))))
 
     def div_yield(self, batch) -> np.ndarray:
         if "div_yield" in self.source:

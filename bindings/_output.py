@@ -30,7 +30,10 @@ def float_column(values: np.ndarray, valid: np.ndarray, validity=None) -> pa.Arr
 
 
 def status_column(codes: np.ndarray) -> pa.DictionaryArray:
-    return pa.DictionaryArray.from_arrays(pa.array(codes, type=pa.int8()), STATUS_VOCABULARY)
+    """Dictionary-encoded status over the int8 codes (no copy)."""
+    codes = np.ascontiguousarray(codes, dtype=np.int8)
+    indices = pa.Array.from_buffers(pa.int8(), len(codes), [None, pa.py_buffer(codes)])
+    return pa.DictionaryArray.from_arrays(indices, STATUS_VOCABULARY)
 
 
 def check_no_clash(schema: pa.Schema, outputs) -> None:

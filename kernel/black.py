@@ -206,3 +206,29 @@ def bsm_price(spot, K, T, D, q, vol, cp, price, status):
     _args.output("price", price, (n,), np.float64)
     _args.output("status", status, (n,), np.int8)
     _args.run(_bsm_price_rows, _bsm_price_par, n, spot, K, T, D, q, vol, cp, price, status)
+
+
+@rows
+def _discount_rows(a, e, rate, T, out):
+    for i in range(np.uint64(a), np.uint64(e)):
+        out[i] = exp(-rate[i] * T[i])
+
+
+@loop
+def _discount_par(rate, T, out):
+    n = T.shape[0]
+    for b in prange((n + BLOCK - 1) // BLOCK):
+        _discount_rows(b * BLOCK, min(n, (b + 1) * BLOCK), rate, T, out)
+
+
+def discount_factors(rate, T, out):
+    """Discount factors exp(-rate T) of continuously compounded rates into ``out``.
+
+    The kernel's own exp (<= 1 ulp, vectorised, both threads): a table-level call spends
+    about a quarter of its overhead on this conversion with numpy.  NaN in, NaN out.
+    """
+    rate, T = _args.floats(None, rate, T)
+    n = T.shape[0]
+    _args.output("out", out, (n,), np.float64)
+    _args.run(_discount_rows, _discount_par, n, rate, T, out)
+    return out

@@ -24,7 +24,8 @@ def _row_table(**over):
 def _kernel_bsm(S, K, T, r, q, vol, cp):
     n = len(S)
     out, st = np.empty(n), np.empty(n, np.int8)
-    D = np.exp(-np.asarray(r, float) * np.asarray(T, float))
+    T = np.asarray(T, float)
+    D = black.discount_factors(np.asarray(r, float) * np.ones_like(T), T, np.empty(T.shape))
     black.bsm_price(*(np.asarray(a, float) for a in (S, K, T, D, q, vol)),
                     np.asarray(cp, np.int8), out, st)
     return out, st

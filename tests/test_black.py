@@ -512,3 +512,18 @@ def test_overflowing_price_is_out_of_range_not_inf():
     black.black76_price(F, K, T, D, vol, np.array([-1, -1], np.int8), price, st)
     assert st[0] == S.OUT_OF_RANGE and np.isnan(price[0])
     assert st[1] == S.OK and np.isfinite(price[1])
+
+
+def test_discount_factors_within_one_ulp_of_mpmath():
+    # reference: mpmath at 40 digits, exp(-r T) of the double product r*T as given
+    import mpmath
+    rng = np.random.default_rng(17)
+    r = np.concatenate([rng.uniform(-0.05, 0.25, 400), [0.0, -0.0, np.nan, np.inf, 30.0]])
+    T = np.concatenate([np.exp(rng.uniform(np.log(1e-4), np.log(50.0), 400)),
+                        [1.0, 2.0, 1.0, 1.0, 30.0]])
+    D = black.discount_factors(r, T, np.empty(r.size))
+    with mpmath.workdps(40):
+        for ri, ti, di in zip(r[:-3], T[:-3], D[:-3]):
+            ref = mpmath.exp(-mpmath.mpf(float(ri * ti)))
+            assert abs(mpmath.mpf(di) - ref) <= np.spacing(float(ref)), (ri, ti)
+    assert np.isnan(D[-3]) and D[-2] == 0.0 and D[-1] == pytest.approx(np.exp(-900.0))
