@@ -19,7 +19,6 @@ noisy).
 """
 
 import argparse
-import functools
 
 import numba
 import numpy as np
@@ -28,27 +27,13 @@ from numba import prange
 from scipy.special import ndtr
 
 from benchmarks._timing import median_times
+from benchmarks.bench_price import make_data  # the same listed-options-like batch
 from volsweep.kernel import black, greeks
 from volsweep.kernel._jit import loop
 
 SIZES = (100_000, 2_000_000)
 FEW = ("delta", "vega")
 IMPLS = ("price", "all", "few", "gamma", "store", "numpy")
-
-
-@functools.lru_cache(maxsize=4)
-def make_data(n, seed=7):
-    """A listed-options-like batch: strikes around the forward, 1 day to 5 years."""
-    rng = np.random.default_rng(seed)
-    T = np.exp(rng.uniform(np.log(1 / 365), np.log(5.0), n))
-    vol = rng.uniform(0.05, 0.8, n)
-    spot = np.exp(rng.uniform(np.log(5.0), np.log(500.0), n))
-    q = rng.uniform(0.0, 0.04, n)
-    D = np.exp(-rng.uniform(0.0, 0.06, n) * T)
-    F = spot * np.exp(-q * T) / D
-    K = F * np.exp(rng.normal(0.0, 1.0, n) * vol * np.sqrt(T))
-    cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
-    return {"F": F, "spot": spot, "K": K, "T": T, "D": D, "q": q, "vol": vol, "cp": cp}
 
 
 # ---------------------------------------------------------------- implementations

@@ -189,13 +189,9 @@ _R3_MAX = 1e8
 
 
 @scalar
-def _cody(x, y):
-    """y = |x|.  Returns erfc(x) if y <= 0.46875, else erfcx(y); one division."""
-    s = y * y
-    # region 1, in s = x^2: erfc(x) = (Q1 - x P1) / Q1
-    p1 = (((_A5 * s + _A1) * s + _A2) * s + _A3) * s + _A4
-    q1 = (((s + _B1) * s + _B2) * s + _B3) * s + _B4
-    num1 = q1 - x * p1
+def _cody_outer(y, s):
+    """(num, den) of erfcx(y) = num / den in Cody's regions 2 and 3 (chosen by y >= 0),
+    s = y*y; the caller divides, once, after any further selection."""
     # region 2, in y
     p2 = ((((((((_C9 * y + _C1) * y + _C2) * y + _C3) * y + _C4) * y + _C5) * y + _C6)
            * y + _C7) * y + _C8)
@@ -211,6 +207,18 @@ def _cody(x, y):
     den = y if y > _R3_MAX else den3
     num = p2 if y <= _R2_MAX else num
     den = q2 if y <= _R2_MAX else den
+    return num, den
+
+
+@scalar
+def _cody(x, y):
+    """y = |x|.  Returns erfc(x) if y <= 0.46875, else erfcx(y); one division."""
+    s = y * y
+    # region 1, in s = x^2: erfc(x) = (Q1 - x P1) / Q1
+    p1 = (((_A5 * s + _A1) * s + _A2) * s + _A3) * s + _A4
+    q1 = (((s + _B1) * s + _B2) * s + _B3) * s + _B4
+    num1 = q1 - x * p1
+    num, den = _cody_outer(y, s)
     num = num1 if y <= _R1_MAX else num
     den = q1 if y <= _R1_MAX else den
     return num / den
@@ -267,18 +275,7 @@ def erfcx_guess(y):
     as 0.
     """
     y = y if y > 0.0 else 0.0
-    s = y * y
-    p2 = ((((((((_C9 * y + _C1) * y + _C2) * y + _C3) * y + _C4) * y + _C5) * y + _C6)
-           * y + _C7) * y + _C8)
-    q2 = (((((((y + _D1) * y + _D2) * y + _D3) * y + _D4) * y + _D5) * y + _D6) * y
-          + _D7) * y + _D8
-    p3 = ((((_P5 * s + _P4) * s + _P3) * s + _P2) * s + _P1) * s + _P6
-    q3 = ((((_Q5 * s + _Q4) * s + _Q3) * s + _Q2) * s + _Q1) * s + 1.0
-    wq3 = s * q3
-    num = _INV_SQRT_PI if y > _R3_MAX else wq3 * _INV_SQRT_PI - p3
-    den = y if y > _R3_MAX else y * wq3
-    num = p2 if y <= _R2_MAX else num
-    den = q2 if y <= _R2_MAX else den
+    num, den = _cody_outer(y, y * y)
     return num / den
 
 
