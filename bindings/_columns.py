@@ -46,14 +46,6 @@ def check_model(model) -> str:
     return model
 
 
-def _readonly(a: np.ndarray) -> np.ndarray:
-    # One numba specialisation for every input: all kernel inputs are read-only arrays.
-    if a.flags.writeable:
-        a = a.view()
-        a.flags.writeable = False
-    return a
-
-
 @dataclass
 class ColumnPlan:
     """Which source column feeds each logical input; validated against one schema."""
@@ -188,18 +180,18 @@ class ColumnPlan:
         else:
             ref_s, ref_ns, ref_valid = _to_seconds(batch.column(self.source["as_of"]))
             valid = valid & ref_valid
-        return _readonly(_years_between(exp_s, exp_ns, ref_s, ref_ns, valid))
+        return _years_between(exp_s, exp_ns, ref_s, ref_ns, valid)
 
     def discount(self, batch, T: np.ndarray) -> np.ndarray:
         if "discount" in self.source:
             return self.floats(batch, "discount")
         r = self.floats(batch, "rate")
-        return _readonly(_black.discount_factors(r, T, np.empty(len(T))))
+        return _black.discount_factors(r, T, np.empty(len(T)))
 
     def div_yield(self, batch) -> np.ndarray:
         if "div_yield" in self.source:
             return self.floats(batch, "div_yield")
-        return _readonly(np.zeros(batch.num_rows))
+        return np.zeros(batch.num_rows)
 
     def call_put(self, batch) -> np.ndarray:
         return _to_call_put(batch.column(self.source["is_call"]))
@@ -232,7 +224,7 @@ def _to_float64(arr: pa.Array) -> np.ndarray:
         arr = pc.cast(arr, pa.float64(), safe=False)
     if arr.null_count:
         arr = pc.fill_null(arr, np.nan)
-    return _readonly(arr.to_numpy(zero_copy_only=False))
+    return arr.to_numpy(zero_copy_only=False)
 
 
 _PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
@@ -315,7 +307,7 @@ def _to_call_put(arr: pa.Array) -> np.ndarray:
     """+1 call, -1 put, 0 for null or an unrecognised word (gives status missing_input)."""
     arr = _decoded(arr)
     if pa.types.is_null(arr.type):
-        return _readonly(np.zeros(len(arr), np.int8))
+        return np.zeros(len(arr), np.int8)
     if _is_string_view(arr.type):
         arr = arr.cast(pa.large_string())
     if pa.types.is_boolean(arr.type):
@@ -326,4 +318,4 @@ def _to_call_put(arr: pa.Array) -> np.ndarray:
                         pc.if_else(pc.is_in(words, pa.array(_PUT_WORDS)),
                                    pa.scalar(-1, pa.int8()), pa.scalar(0, pa.int8())))
     cp = pc.fill_null(cp, pa.scalar(0, pa.int8()))
-    return _readonly(cp.to_numpy(zero_copy_only=False).astype(np.int8, copy=False))
+    return cp.to_numpy(zero_copy_only=False).astype(np.int8, copy=False)

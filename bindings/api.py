@@ -22,7 +22,7 @@ from volsweep.kernel import status as _status
 from volsweep.kernel import sweep as _sweep
 from volsweep.kernel._jit import BLOCK as _BLOCK
 
-from ._columns import ColumnPlan, _readonly, check_model
+from ._columns import ColumnPlan, check_model
 from ._input import as_batches
 from ._output import (append, check_no_clash, float_column, output_schema, status_column,
                       validity_buffer)
@@ -41,8 +41,8 @@ def _probe_threading_layer() -> bool:
         if _workqueue is None:
             # more than one block: one block or less runs the row loop without a launch
             n = _BLOCK + 1
-            one = _readonly(np.ones(n))
-            _black.black76_price(one, one, one, one, one, _readonly(np.ones(n, np.int8)),
+            one = np.ones(n)
+            _black.black76_price(one, one, one, one, one, np.ones(n, np.int8),
                                  np.empty(n), np.empty(n, np.int8))
             _workqueue = numba.threading_layer() == "workqueue"
     return _workqueue
@@ -240,8 +240,7 @@ def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
     if "vega" in names:
         vega = g[names.index("vega")]
     else:
-        # read-only like every kernel input: the specialisation greeks() already compiled
-        (vega,), _, _ = _greek_values(plan, ("vega",), und, K, T, D, q, _readonly(iv_m), cp)
+        (vega,), _, _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
     with np.errstate(all="ignore"):
         unc = half_spread / vega
     ok = st_m == 0
