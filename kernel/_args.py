@@ -23,9 +23,10 @@ def _readonly(a: np.ndarray) -> np.ndarray:
     return a
 
 
-def floats(n: int | None, *arrays):
+def floats(*arrays):
     """Read-only C-contiguous float64 views of 1-d inputs of one common length."""
     out = []
+    n = None
     for a in arrays:
         a = np.ascontiguousarray(a, dtype=np.float64)
         if a.ndim != 1:

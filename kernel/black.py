@@ -190,7 +190,7 @@ def black76_price(F, K, T, D, vol, cp, price, status):
     codes, +1 call, -1 put, 0 missing; price (float64) and status (int8): preallocated.
     A price that is not a finite double (overflow) gets status out_of_range and NaN.
     """
-    F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
+    F, K, T, D, vol = _args.floats(F, K, T, D, vol)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("price", price, (n,), np.float64)
@@ -200,7 +200,7 @@ def black76_price(F, K, T, D, vol, cp, price, status):
 
 def bsm_price(spot, K, T, D, q, vol, cp, price, status):
     """Black-Scholes-Merton prices on spot with continuous dividend yield q (as black76)."""
-    spot, K, T, D, q, vol = _args.floats(None, spot, K, T, D, q, vol)
+    spot, K, T, D, q, vol = _args.floats(spot, K, T, D, q, vol)
     n = spot.shape[0]
     cp = _args.codes(n, cp)
     _args.output("price", price, (n,), np.float64)
@@ -227,7 +227,7 @@ def discount_factors(rate, T, out):
     The kernel's own exp (<= 1 ulp, vectorised, both threads): a table-level call spends
     about a quarter of its overhead on this conversion with numpy.  NaN in, NaN out.
     """
-    rate, T = _args.floats(None, rate, T)
+    rate, T = _args.floats(rate, T)
     n = T.shape[0]
     _args.output("out", out, (n,), np.float64)
     _args.run(_discount_rows, _discount_par, n, rate, T, out)

@@ -451,7 +451,7 @@ def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
     0 for ordinary inputs), so a caller can skip checking the outputs when it is 0.
     """
     mask, nsel = _check_mask(mask)
-    F, K, T, D, vol = _args.floats(None, F, K, T, D, vol)
+    F, K, T, D, vol = _args.floats(F, K, T, D, vol)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("out", out, (nsel, n), np.float64)
@@ -464,7 +464,7 @@ def bsm_greeks(spot, K, T, D, q, vol, cp, mask, out, status):
     """BSM Greeks (against spot, continuous yield q) into ``out[n_requested, n]``; returns
     the number of ok rows with a requested Greek that is not finite (as black76_greeks)."""
     mask, nsel = _check_mask(mask)
-    spot, K, T, D, q, vol = _args.floats(None, spot, K, T, D, q, vol)
+    spot, K, T, D, q, vol = _args.floats(spot, K, T, D, q, vol)
     n = spot.shape[0]
     cp = _args.codes(n, cp)
     _args.output("out", out, (nsel, n), np.float64)

@@ -346,7 +346,7 @@ def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
     Inputs: float64 arrays of one length n (cp integer codes); outputs preallocated:
     iv_out float64 (NaN where the status is not ok) and status_out int8.
     """
-    premium, F, K, T, D = _args.floats(None, premium, F, K, T, D)
+    premium, F, K, T, D = _args.floats(premium, F, K, T, D)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("iv_out", iv_out, (n,), np.float64)
@@ -357,7 +357,7 @@ def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
 
 def bsm_iv(premium, spot, K, T, D, q, cp, iv_out, status_out):
     """Black-Scholes-Merton implied vols on spot with continuous dividend yield q."""
-    premium, spot, K, T, D, q = _args.floats(None, premium, spot, K, T, D, q)
+    premium, spot, K, T, D, q = _args.floats(premium, spot, K, T, D, q)
     n = spot.shape[0]
     cp = _args.codes(n, cp)
     _args.output("iv_out", iv_out, (n,), np.float64)

@@ -64,7 +64,7 @@ def black76_sweep(premium, F, K, T, D, cp, mask, iv_out, out, status):
     Returns the number of rows with an implied vol and a requested Greek that is not
     finite (as ``greeks.black76_greeks``).
     """
-    premium, F, K, T, D = _args.floats(None, premium, F, K, T, D)
+    premium, F, K, T, D = _args.floats(premium, F, K, T, D)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
@@ -75,7 +75,7 @@ def black76_sweep(premium, F, K, T, D, cp, mask, iv_out, out, status):
 
 def bsm_sweep(premium, spot, K, T, D, q, cp, mask, iv_out, out, status):
     """BSM implied vol of ``premium`` and the Greeks in ``mask`` (against spot)."""
-    premium, spot, K, T, D, q = _args.floats(None, premium, spot, K, T, D, q)
+    premium, spot, K, T, D, q = _args.floats(premium, spot, K, T, D, q)
     n = spot.shape[0]
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
