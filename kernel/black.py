@@ -24,7 +24,8 @@ What we do instead:
        a <  0 (core):  otm = A - sqrt(F K) E (erfcx(-a) + erfcx(b))
 
    In the core A Phi(d1) = A - A Phi(-d1) is written through the same E, so each price
-   costs one exp and two erfcx.  The relative amplification of rounding errors in the
+   costs one exp and two erfcx of non-negative arguments (``erfcx_pos``, itself without an
+   exponential).  The relative amplification of rounding errors in the
    remaining subtraction equals the price's elasticity to F (or K), i.e. it is the
    problem's own condition number, so the price is accurate to a few ulps times
    max(1, e_F + e_K + e_s) down to prices near underflow (about 1e-300 F).
@@ -38,7 +39,7 @@ from numba import prange
 from . import status as S
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
-from .special import erfcx, exp, log
+from .special import erfcx_pos, exp, log
 
 _SQRT1_2 = 0.7071067811865476
 NAN = np.nan
@@ -59,8 +60,8 @@ def otm_parts(x, s):
     b = (t - h) * _SQRT1_2
     e = 0.5 * exp(-0.5 * (h * h + t * t))
     wing = a >= 0.0
-    ea = erfcx(a if wing else -a)
-    eb = erfcx(b)
+    ea = erfcx_pos(a if wing else -a)
+    eb = erfcx_pos(b)
     q = e * (ea - eb) if wing else -e * (ea + eb)
     core = 0.0 if wing else 1.0
     return core, q

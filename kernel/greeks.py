@@ -98,7 +98,7 @@ from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar, specialise
 from .black import bsm_inputs, input_status
-from .special import erfcx, exp, log
+from .special import erfcx_pos, exp, log
 
 _SQRT1_2 = 0.7071067811865476
 _INV_SQRT_2PI = 0.3989422804014327
@@ -181,8 +181,8 @@ def _shared(F, K, T, D, vol, w):
     n1 = n1 if live else 0.0
     n2 = n1 * m                          # phi(d2) = phi(d1) F / K
     g1 = _SQRT_PI_2 * n1
-    e1 = erfcx(abs(d1) * _SQRT1_2)
-    e2 = erfcx(abs(d2) * _SQRT1_2)
+    e1 = erfcx_pos(abs(d1) * _SQRT1_2)
+    e2 = erfcx_pos(abs(d2) * _SQRT1_2)
     c1 = g1 * e1                         # Phi(-|d1|)
     c2 = g1 * m * e2                     # Phi(-|d2|)
     k1 = d1 if pos else x                # the sign of d1 (of ln F/K when s -> 0)

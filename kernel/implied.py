@@ -51,7 +51,7 @@ from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
 from .black import _is_inf, _is_nan, bsm_inputs, input_status
-from .special import erfcx, erfcx_guess, exp, log
+from .special import erfcx_guess, erfcx_pos, exp, log
 
 NAN = np.nan
 INF = np.inf
@@ -180,8 +180,8 @@ def _householder(s, x, lt, upper, sc, polish):
     u2 = t - h
     za = (d1 if upper else -d1) * _SQRT1_2    # >= 0 on the region's side of s_c
     zb = u2 * _SQRT1_2
-    ea = erfcx(za) if polish else erfcx_guess(za)
-    eb = erfcx(zb) if polish else erfcx_guess(zb)
+    ea = erfcx_pos(za) if polish else erfcx_guess(za)
+    eb = erfcx_pos(zb) if polish else erfcx_guess(zb)
     sw = ea + eb if upper else ea - eb
     ell = log(0.5 * sw) - 0.5 * d1 * d1
     # g1 = s y'/y = +-2 s / (sqrt(2 pi) sw), the objective's elasticity, and 1 / g1
@@ -268,7 +268,7 @@ def implied_total_vol(x, r, rs, lsc, c):
     returned by ``normalised_time_value`` (0 < r < 1).  Returns s > 0, or 0 / NaN where
     the time value is not resolvable (the caller maps it to NO_TIME_VALUE)."""
     sc = math.sqrt(-2.0 * x)
-    rc = 0.5 * (1.0 - erfcx(math.sqrt(-x)))        # r at s_c: erfcx(0) term is 1
+    rc = 0.5 * (1.0 - erfcx_pos(math.sqrt(-x)))        # r at s_c: erfcx(0) term is 1
     lower = r <= rc
     lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)

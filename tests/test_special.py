@@ -421,3 +421,35 @@ def test_erfcx_guess_accuracy_for_nonnegative_arguments():
     assert np.count_nonzero(x <= 0.46875) > 100          # the region it approximates
     assert special.erfcx_guess(-1.0) == special.erfcx_guess(0.0) == pytest.approx(1.0,
                                                                                  rel=5e-12)
+
+
+@_uncached(loop)
+def _par_erfcx_pos(x, out):
+    for i in numba.prange(x.size):
+        out[i] = special.erfcx_pos(x[i])
+
+
+def test_erfcx_pos_accuracy_and_agreement_with_erfcx():
+    # reference: mpmath at 50 digits (the erfcx rows of tests/data/special_reference.npz
+    # with x >= 0).  erfcx_pos is erfcx without the exponential, for arguments known to be
+    # non-negative: the same 2e-15 bound, and the same bits as erfcx there.
+    x, ref, frac = (TABLE[f"erfcx_{k}"] for k in ("x", "ref", "frac"))
+    keep = x >= 0.0
+    x, ref, frac = np.ascontiguousarray(x[keep]), ref[keep], frac[keep]
+    assert np.count_nonzero(x <= 0.46875) > 100          # the polynomial's interval
+    y = np.empty_like(x)
+    _par_erfcx_pos(x, y)
+    normal = np.abs(ref) >= DBL_MIN
+    rel = rel_error(y[normal], ref[normal], frac[normal])
+    i = int(np.argmax(rel))
+    print(f"erfcx_pos: max rel {rel[i]:.3g} at x={x[normal][i]!r} ({x.size} points)")
+    assert rel[i] <= REL_TOL, (x[normal][i], y[normal][i], ref[normal][i])
+    z = np.empty_like(x)
+    _par_erfcx(x, z)
+    assert np.array_equal(y.view(np.int64), z.view(np.int64))
+    assert special.erfcx_pos(0.0) == 1.0 and special.erfcx_pos(np.inf) == 0.0
+    assert np.isnan(special.erfcx_pos(np.nan))
+    # a rounding error below zero (reference: mpmath, erfcx(-1e-4) = exp(1e-8) erfc(-1e-4))
+    with mpmath.workdps(40):
+        want = float(mpmath.exp(mpmath.mpf(-1e-4) ** 2) * mpmath.erfc(mpmath.mpf(-1e-4)))
+    assert special.erfcx_pos(-1e-4) == pytest.approx(want, rel=2e-15)
