@@ -30,10 +30,15 @@ def float_column(values: np.ndarray, valid: np.ndarray, validity=None) -> pa.Arr
 
 
 def status_column(codes: np.ndarray) -> pa.DictionaryArray:
-    """Dictionary-encoded status over the int8 codes (no copy)."""
+    """Dictionary-encoded status over the int8 codes (no copy).
+
+    The codes are the kernel's (every row written, every value one of ``status.NAMES``),
+    so Arrow's bounds check of the indices (a pass over the column, ~1.5 ms per 2M rows)
+    is skipped; tests/test_api.py checks every status value against the vocabulary.
+    """
     codes = np.ascontiguousarray(codes, dtype=np.int8)
     indices = pa.Array.from_buffers(pa.int8(), len(codes), [None, pa.py_buffer(codes)])
-    return pa.DictionaryArray.from_arrays(indices, STATUS_VOCABULARY)
+    return pa.DictionaryArray.from_arrays(indices, STATUS_VOCABULARY, safe=False)
 
 
 def check_no_clash(schema: pa.Schema, outputs) -> None:

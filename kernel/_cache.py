@@ -31,16 +31,22 @@ def hash_sources(folder: str) -> bytes:
 
 _STAMP: list = []
 
+# Code-generation settings that change the machine code without changing the sources; they
+# are part of the stamp, so each setting keeps its own compiled cache (see _jit.INTERLEAVE).
+INTERLEAVE = int(os.environ.get("VOLSWEEP_INTERLEAVE", "3"))
+
 
 def kernel_source_hash() -> bytes:
-    """The hash of the kernel sources as this process imported them.
+    """The hash of the kernel sources as this process imported them (and of the
+    code-generation settings above).
 
     Taken once, at import: a process that keeps running while someone edits kernel/ goes
     on stamping what it compiles with the hash of the code it actually runs, so it cannot
     file old machine code under the new sources' stamp.
     """
     if not _STAMP:
-        _STAMP.append(hash_sources(_KERNEL_DIR))
+        settings = f"interleave={INTERLEAVE}".encode()
+        _STAMP.append(hashlib.sha256(hash_sources(_KERNEL_DIR) + settings).digest())
     return _STAMP[0]
 
 

@@ -37,7 +37,9 @@ Why these flags:
 import os
 import types
 
+import llvmlite.binding as _llvm
 import numba
+from numba.core.compiler_lock import global_compiler_lock
 
 from . import _cache
 
@@ -56,6 +58,47 @@ FASTMATH = frozenset({"contract"})
 BLOCK = 2048  # rows per parallel task: a block's columns stay in L1/L2 between steps
 
 
+# Vector interleave count of the row loops.  Their bodies are long dependency chains (log ->
+# division -> exp / erfcx -> combination, ~200 cycles of latency per vector of 8 rows), and
+# the out-of-order window of the CPU holds less than one such iteration, so LLVM's own
+# choice (1 for loops this large) leaves the loop latency-bound.  Interleaving 3 vectors
+# per iteration gives 3 independent chains: +20-30% price, +45% implied vol, +10% Greeks
+# on Zen 4 (benchmarks/RESULTS.md).  Each row is computed by the same instructions either
+# way, so the bits do not change (tests/test_determinism.py).  VOLSWEEP_INTERLEAVE=0
+# restores LLVM's choice (say, for a CPU with 16 vector registers, where the spills might
+# cost more); it is part of the cache key.
+INTERLEAVE = _cache.INTERLEAVE
+_depth = [0]
+
+
+def _interleaved(disp):
+    """Compile ``disp`` with LLVM's --force-vector-interleave=INTERLEAVE, and only it.
+
+    The option is process-wide LLVM state, so it is set under numba's global compiler lock
+    (no other compilation runs meanwhile), kept across nested compilations of our own
+    kernels, and reset to 0 (LLVM's own choice) when the outermost one ends: other numba
+    code in the process is compiled as if volsweep were not there.
+    """
+    if INTERLEAVE <= 0:
+        return disp
+    compile_one = disp.compile
+
+    def compile(sig):
+        with global_compiler_lock:
+            if _depth[0] == 0:
+                _llvm.set_option("volsweep", f"--force-vector-interleave={INTERLEAVE}")
+            _depth[0] += 1
+            try:
+                return compile_one(sig)
+            finally:
+                _depth[0] -= 1
+                if _depth[0] == 0:
+                    _llvm.set_option("volsweep", "--force-vector-interleave=0")
+
+    disp.compile = compile
+    return disp
+
+
 def scalar(fn):
     """Pointwise float64 function: inlined, numpy error model, FMA contraction."""
     return numba.njit(inline="always", error_model="numpy", fastmath=set(FASTMATH),
@@ -64,20 +107,20 @@ def scalar(fn):
 
 def loop(fn):
     """Parallel array loop over preallocated outputs."""
-    return numba.njit(parallel=True, error_model="numpy", fastmath=set(FASTMATH),
-                      cache=True, nogil=True)(fn)
+    return _interleaved(numba.njit(parallel=True, error_model="numpy",
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
 
 
 def rows(fn):
     """Serial loop over rows ``a <= i < e`` (first two arguments), called per block."""
-    return numba.njit(parallel=False, error_model="numpy", fastmath=set(FASTMATH),
-                      cache=True, nogil=True)(fn)
+    return _interleaved(numba.njit(parallel=False, error_model="numpy",
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
 
 
 def serial_loop(fn):
     """Single-threaded array loop (used where parallel overhead dominates)."""
-    return numba.njit(parallel=False, error_model="numpy", fastmath=set(FASTMATH),
-                      cache=True, nogil=True)(fn)
+    return _interleaved(numba.njit(parallel=False, error_model="numpy",
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
 
 
 def specialise(template, name: str, **consts):

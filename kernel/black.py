@@ -16,15 +16,17 @@ What we do instead:
    the out-of-the-money option of the pair, with x_o = -|x| <= 0, A = min(F, K),
    B = max(F, K):  price = D * (max(theta (F - K), 0) + otm).  Both parts are positive.
 2. With Phi(z) = erfcx(-z/sqrt2) exp(-z^2/2) / 2, both terms of the OTM value share the
-   factor E = exp(-(h^2 + t^2)/2) / 2 (because x/2 = h t), which is computed once, and the
-   rest is a difference of slowly varying scaled complementary error functions
-   (a = -(h+t)/sqrt2, b = (t-h)/sqrt2 >= 0):
+   factor E = exp(-d1^2/2) / 2 = exp(-a^2) / 2 (because B phi(d2) = A phi(d1) for the OTM
+   option: x_o/2 = h t), which is computed once, and the rest is a difference of slowly
+   varying scaled complementary error functions (a = -(h+t)/sqrt2 = -d1/sqrt2,
+   b = (t-h)/sqrt2 >= |a|):
 
-       a >= 0 (wing):  otm = sqrt(F K) E (erfcx(a) - erfcx(b))
-       a <  0 (core):  otm = A - sqrt(F K) E (erfcx(-a) + erfcx(b))
+       a >= 0 (wing):  otm = A E (erfcx(a) - erfcx(b))
+       a <  0 (core):  otm = A (1 - E (erfcx(-a) + erfcx(b)))
 
    In the core A Phi(d1) = A - A Phi(-d1) is written through the same E, so each price
-   costs one exp and two erfcx of non-negative arguments (``erfcx_pos``, itself without an
+   costs one exp (of -a^2 split exactly into two doubles, so that only the rounding of a
+   reaches it) and two erfcx of non-negative arguments (``erfcx_pos``, itself without an
    exponential).  The relative amplification of rounding errors in the
    remaining subtraction equals the price's elasticity to F (or K), i.e. it is the
    problem's own condition number, so the price is accurate to a few ulps times
@@ -39,7 +41,7 @@ from numba import prange
 from . import status as S
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
-from .special import erfcx_pos, exp, log
+from .special import _exp_sq, erfcx_pos, exp, log
 
 _SQRT1_2 = 0.7071067811865476
 NAN = np.nan
@@ -47,31 +49,23 @@ INF = np.inf
 
 
 @scalar
-def otm_parts(x, s):
-    """Normalised out-of-the-money time value as (core, q), x <= 0, s > 0.
+def otm_ratio(x, s):
+    """Out-of-the-money time value per upper bound, otm / min(F, K), for x <= 0, s > 0.
 
-    The OTM value in price space is ``core * min(F, K) + sqrt(F K) * q`` and in normalised
-    space (divided by sqrt(F K)) it is ``core * exp(x/2) + q``; ``core`` is 1.0 in the core
-    region and 0.0 in the wing.  ``h = x/s`` may be -inf (s -> 0), giving q = 0.
+    ``h = x/s`` may be -inf (s -> 0), giving 0.  The common factor is
+    E = exp(-d1^2/2) / 2 = exp(-a^2) / 2 with a^2 split exactly, so only the rounding of a
+    itself reaches it (relative ~eps a^2, the problem's own sensitivity to x there).
     """
     h = x / s
     t = 0.5 * s
     a = -(h + t) * _SQRT1_2
     b = (t - h) * _SQRT1_2
-    e = 0.5 * exp(-0.5 * (h * h + t * t))
+    ya = abs(a)
+    e = 0.5 * _exp_sq(40.0 if ya > 40.0 else ya, -1.0)   # exp(-1600) = 0
     wing = a >= 0.0
-    ea = erfcx_pos(a if wing else -a)
+    ea = erfcx_pos(ya)
     eb = erfcx_pos(b)
-    q = e * (ea - eb) if wing else -e * (ea + eb)
-    core = 0.0 if wing else 1.0
-    return core, q
-
-
-@scalar
-def normalised_otm(x, s):
-    """Normalised OTM time value b(x_o, s) / for x <= 0: price / (D sqrt(F K))."""
-    core, q = otm_parts(x, s)
-    return core * exp(0.5 * x) + q
+    return e * (ea - eb) if wing else 1.0 - e * (ea + eb)
 
 
 @scalar
@@ -81,8 +75,7 @@ def black_price(F, K, s, D, theta):
     xo = -abs(x)
     A = min(F, K)
     ss = s if s > 0.0 else 1.0
-    core, q = otm_parts(xo, ss)
-    otm = core * A + (math.sqrt(F) * math.sqrt(K)) * q
+    otm = A * otm_ratio(xo, ss)
     otm = otm if s > 0.0 else 0.0
     intrinsic = max(theta * (F - K), 0.0)
     return D * (intrinsic + otm)

@@ -7,7 +7,9 @@ import pyarrow as pa
 import pytest
 
 import volsweep
+from volsweep import _columns
 from volsweep.kernel import black
+from volsweep.kernel import status as _status
 
 # Hull, "Options, Futures, and Other Derivatives", worked example (from memory; value
 # re-derived with mpmath: 4.759422392871532): S=42, K=40, r=10%, sigma=20%, T=0.5.
@@ -175,6 +177,30 @@ def test_zero_vol_prices_discounted_intrinsic():
 def test_status_is_dictionary_encoded():
     out = volsweep.price(_row_table())
     assert pa.types.is_dictionary(out.schema.field("status").type)
+
+
+def test_every_kernel_status_code_is_in_the_vocabulary():
+    # status_column skips Arrow's index bounds check: every code the kernel can write must
+    # be a valid index of the vocabulary (and the vocabulary must be the kernel's names)
+    from volsweep._output import STATUS_VOCABULARY
+    assert STATUS_VOCABULARY.to_pylist() == list(_status.NAMES)
+    codes = [v for k, v in vars(_status).items() if k.isupper() and isinstance(v, int)
+             and k not in ("NONFINITE_GREEK_FLAG",)]
+    assert codes and all(0 <= c < len(_status.NAMES) for c in codes)
+    out = volsweep.price(_row_table()).column("status").combine_chunks()
+    out.validate(full=True)
+
+
+def test_boolean_call_put_with_nulls_and_slice_offsets():
+    # True = call, False = put, null = missing (README); sliced arrays start mid-byte
+    rng = np.random.default_rng(3)
+    flags = rng.random(203) < 0.5
+    arr = pa.array(flags, mask=rng.random(203) < 0.2)
+    for off, length in ((0, 203), (1, 150), (5, 3), (9, 0), (13, 190)):
+        piece = arr.slice(off, length)
+        want = [0 if v is None else (1 if v else -1) for v in piece.to_pylist()]
+        got = _columns._to_call_put(piece)
+        assert got.dtype == np.int8 and got.tolist() == want, (off, length)
 
 
 def test_empty_input_gives_empty_output_with_schema():

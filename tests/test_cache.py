@@ -33,3 +33,56 @@ def test_each_kernel_version_caches_in_its_own_folder(monkeypatch, tmp_path):
     loc = _cache.KernelUserProvidedLocator(black._black76_price_rows.py_func, black.__file__)
     assert loc.get_cache_path() == str(tmp_path / "volsweep-kernel"
                                        / _cache.kernel_source_hash().hex()[:16])
+
+
+_INTERLEAVE_PROBE = r"""
+import re, sys
+import numba, numpy as np
+
+def packed_adds(fn):
+    asm = "\n".join(fn.inspect_asm().values())
+    return len(re.findall(r"\bvaddpd\s+%[xyz]mm", asm))
+
+def user_loop():
+    @numba.njit(fastmath=True)
+    def total(a):
+        s = 0.0
+        for i in range(a.shape[0]):
+            s += a[i]
+        return s
+    total(np.ones(4))
+    return total
+
+before = packed_adds(user_loop())
+from volsweep.kernel import _jit, black
+x = np.linspace(0.0, 0.1, 100)
+black.discount_factors(x, x, np.empty(100))         # compiles one of our row loops
+after = packed_adds(user_loop())
+print(before, after, _jit._depth[0])
+"""
+
+
+def test_forced_interleave_does_not_leak_into_other_numba_code(tmp_path):
+    # the interleave option is process-wide LLVM state: set while our kernels compile, it
+    # must be back at LLVM's own choice for code compiled afterwards
+    import os
+    import subprocess
+    import sys
+    env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp_path))        # force a fresh compile
+    out = subprocess.run([sys.executable, "-c", _INTERLEAVE_PROBE], env=env, check=True,
+                         capture_output=True, text=True).stdout.split()
+    before, after, depth = (int(v) for v in out)
+    assert before > 0 and after == before and depth == 0
+
+
+def test_interleave_setting_is_part_of_the_stamp():
+    import os
+    import subprocess
+    import sys
+    code = "from volsweep.kernel import _cache; print(_cache.kernel_source_hash().hex())"
+    stamps = set()
+    for value in ("0", "3"):
+        env = dict(os.environ, VOLSWEEP_INTERLEAVE=value)
+        stamps.add(subprocess.run([sys.executable, "-c", code], env=env, check=True,
+                                  capture_output=True, text=True).stdout.strip())
+    assert len(stamps) == 2
