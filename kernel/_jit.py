@@ -62,38 +62,41 @@ BLOCK = 2048  # rows per parallel task: a block's columns stay in L1/L2 between 
 # division -> exp / erfcx -> combination, ~200 cycles of latency per vector of 8 rows), and
 # the out-of-order window of the CPU holds less than one such iteration, so LLVM's own
 # choice (1 for loops this large) leaves the loop latency-bound.  Interleaving 3 vectors
-# per iteration gives 3 independent chains: +20-30% price, +45% implied vol, +10% Greeks
-# on Zen 4 (benchmarks/RESULTS.md).  Each row is computed by the same instructions either
-# way, so the bits do not change (tests/test_determinism.py).  VOLSWEEP_INTERLEAVE=0
-# restores LLVM's choice (say, for a CPU with 16 vector registers, where the spills might
-# cost more); it is part of the cache key.
+# per iteration gives 3 independent chains: +20-30% price, +45% implied vol on Zen 4
+# (benchmarks/RESULTS.md).  Not for the Greeks loops (``interleave=0``): they write 16
+# output columns and are bound by memory at table sizes, where interleaving lost 7%.  Each
+# row is computed by the same instructions either way, so the bits do not change
+# (tests/test_determinism.py).  VOLSWEEP_INTERLEAVE=0 restores LLVM's choice everywhere
+# (say, for a CPU with 16 vector registers, where the spills might cost more); it is part
+# of the cache stamp.
 INTERLEAVE = _cache.INTERLEAVE
-_depth = [0]
+_stack: list = []
 
 
-def _interleaved(disp):
-    """Compile ``disp`` with LLVM's --force-vector-interleave=INTERLEAVE, and only it.
+def _set_interleave(count: int) -> None:
+    _llvm.set_option("volsweep", f"--force-vector-interleave={count}")
+
+
+def _interleaved(disp, count: int):
+    """Compile ``disp`` with LLVM's --force-vector-interleave=count (0: LLVM's choice).
 
     The option is process-wide LLVM state, so it is set under numba's global compiler lock
-    (no other compilation runs meanwhile), kept across nested compilations of our own
-    kernels, and reset to 0 (LLVM's own choice) when the outermost one ends: other numba
-    code in the process is compiled as if volsweep were not there.
+    (no other compilation runs meanwhile), per dispatcher (a kernel compiled inside
+    another's compilation gets its own count, then the outer one's is restored), and reset
+    to 0 when the outermost of our compilations ends: other numba code in the process is
+    compiled as if volsweep were not there.
     """
-    if INTERLEAVE <= 0:
-        return disp
     compile_one = disp.compile
 
     def compile(sig):
         with global_compiler_lock:
-            if _depth[0] == 0:
-                _llvm.set_option("volsweep", f"--force-vector-interleave={INTERLEAVE}")
-            _depth[0] += 1
+            _stack.append(count)
+            _set_interleave(count)
             try:
                 return compile_one(sig)
             finally:
-                _depth[0] -= 1
-                if _depth[0] == 0:
-                    _llvm.set_option("volsweep", "--force-vector-interleave=0")
+                _stack.pop()
+                _set_interleave(_stack[-1] if _stack else 0)
 
     disp.compile = compile
     return disp
@@ -105,22 +108,30 @@ def scalar(fn):
                       cache=True, nogil=True)(fn)
 
 
-def loop(fn):
+def loop(fn=None, *, interleave=INTERLEAVE):
     """Parallel array loop over preallocated outputs."""
+    if fn is None:
+        return lambda f: loop(f, interleave=interleave)
     return _interleaved(numba.njit(parallel=True, error_model="numpy",
-                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
+                        interleave)
 
 
-def rows(fn):
-    """Serial loop over rows ``a <= i < e`` (first two arguments), called per block."""
+def rows(fn=None, *, interleave=INTERLEAVE):
+    """Serial loop over rows ``a <= i < e`` (first two arguments), called per block;
+    ``interleave``: LLVM's vector interleave count for it (0: LLVM's choice)."""
+    if fn is None:
+        return lambda f: rows(f, interleave=interleave)
     return _interleaved(numba.njit(parallel=False, error_model="numpy",
-                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
+                        interleave)
 
 
 def serial_loop(fn):
     """Single-threaded array loop (used where parallel overhead dominates)."""
     return _interleaved(numba.njit(parallel=False, error_model="numpy",
-                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn))
+                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
+                        INTERLEAVE)
 
 
 def specialise(template, name: str, **consts):

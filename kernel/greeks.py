@@ -421,7 +421,7 @@ def _kernel(model, mask):
     sl, _ = _slots(mask)
     rows_t, par_t = _TEMPLATES[model]
     tag = f"{model}_greeks_{mask:04x}"
-    row_loop = rows(specialise(rows_t, f"rows_{tag}", SLOTS=sl))
+    row_loop = rows(specialise(rows_t, f"rows_{tag}", SLOTS=sl), interleave=0)  # see _jit
     par_loop = loop(specialise(par_t, f"par_{tag}", ROWS=row_loop))
     return row_loop, par_loop
 

@@ -58,7 +58,7 @@ from volsweep.kernel import _jit, black
 x = np.linspace(0.0, 0.1, 100)
 black.discount_factors(x, x, np.empty(100))         # compiles one of our row loops
 after = packed_adds(user_loop())
-print(before, after, _jit._depth[0])
+print(before, after, len(_jit._stack))
 """
 
 
