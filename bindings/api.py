@@ -33,17 +33,16 @@ _workqueue = None  # is numba's threading layer "workqueue"?  Known after the fi
 
 
 def _probe_threading_layer() -> bool:
-    """Start numba's threading layer with a one-row price (an already compiled loop) and
-    say whether it is ``workqueue``, which is not thread-safe and aborts the process on a
-    nested parallel launch."""
+    """Start numba's threading layer with the smallest parallel kernel (discount factors:
+    quick to load from the cache, and most calls need it anyway) and say whether it is
+    ``workqueue``, which is not thread-safe and aborts the process on a nested parallel
+    launch."""
     global _workqueue
     with _LAUNCH_LOCK:
         if _workqueue is None:
             # more than one block: one block or less runs the row loop without a launch
             n = _BLOCK + 1
-            one = np.ones(n)
-            _black.black76_price(one, one, one, one, one, np.ones(n, np.int8),
-                                 np.empty(n), np.empty(n, np.int8))
+            _black.discount_factors(np.zeros(n), np.ones(n), np.empty(n))
             _workqueue = numba.threading_layer() == "workqueue"
     return _workqueue
 
