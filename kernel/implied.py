@@ -51,7 +51,7 @@ from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
 from .black import _is_inf, _is_nan, bsm_inputs, input_status
-from .special import erfcx_guess, erfcx_pos, exp, log
+from .special import erfcx_pos, exp, log
 
 NAN = np.nan
 INF = np.inf
@@ -162,12 +162,8 @@ def normalised_time_value(P, F, K, D, theta):
 
 
 @scalar
-def _householder(s, x, lt, upper, sc, polish):
+def _householder(s, x, lt, upper, sc):
     """One Householder step (order 3) on ln y(s) = lt, y = r (lower) or c (upper), x <= 0.
-
-    ``polish`` (a constant at each call site): full-precision erfcx for the last step;
-    the first step uses ``erfcx_guess`` (5e-12), whose error the last step's fourth-order
-    convergence wipes out.
 
     The iterate is first clamped to its region's side of s_c (the root lies there, so this
     only ever moves it closer); the region's own formula then applies without cancellation
@@ -180,8 +176,8 @@ def _householder(s, x, lt, upper, sc, polish):
     u2 = t - h
     za = (d1 if upper else -d1) * _SQRT1_2    # >= 0 on the region's side of s_c
     zb = u2 * _SQRT1_2
-    ea = erfcx_pos(za) if polish else erfcx_guess(za)
-    eb = erfcx_pos(zb) if polish else erfcx_guess(zb)
+    ea = erfcx_pos(za)
+    eb = erfcx_pos(zb)
     sw = ea + eb if upper else ea - eb
     ell = log(0.5 * sw) - 0.5 * d1 * d1
     # g1 = s y'/y = +-2 s / (sqrt(2 pi) sw), the objective's elasticity, and 1 / g1
@@ -209,7 +205,7 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
     g = 1.0 / (e12 * e12 * e12)                  # e^{xi/4}
     sxi = math.sqrt(xi)
     # second erfcx argument by region: sqrt(xi/12) (lower map at s_c), sqrt(xi)/2 (upper)
-    ex2 = erfcx_guess(sxi * (0.28867513459481287 if lower else 0.5))
+    ex2 = erfcx_pos(sxi * (0.28867513459481287 if lower else 0.5))
     p2 = 0.5 * ex2
     # lower: rational cubic of f(beta) on [0, b_c]: f(0)=0, f'(0)=1; value, slope and
     # curvature of f_l(s(beta)) at s_c (b'' = 0 there).  All per b_c; t = r / r_c.
@@ -273,8 +269,8 @@ def implied_total_vol(x, r, rs, lsc, c):
     lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
     # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
-    s = _householder(s, x, lt, not lower, sc, False)
-    s = _householder(s, x, lt, not lower, sc, True)
+    s = _householder(s, x, lt, not lower, sc)
+    s = _householder(s, x, lt, not lower, sc)
     tiny = (not lower) and r < _R_TINY
     return _SQRT2PI * (r - 0.5 * x) if tiny else s
 

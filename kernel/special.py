@@ -16,9 +16,9 @@ exp         [-745.13, 709.78]                 <= 1 ulp [0.59; subnormal results 
 log         every positive double             <= 1 ulp [0.66; subnormal inputs 0.50]
 erfc        [-6, 26.55] (normal result)       <= 2e-15 relative [5.6e-16]
             (26.55, 27.3] (subnormal)         <= 4 * 2**-1074 [0.58]; 0 beyond
-erfcx       [-26.628, 2.5e307]                <= 2e-15 relative [5.4e-16]
+erfcx       [-26.628, 2.5e307]                <= 2e-15 relative [7.8e-16]
             up to the largest double          subnormal result, <= 4 * 2**-1074 [0.52]
-erfcx_pos   [0, 2.5e307] (as erfcx, no exp)   <= 2e-15 relative
+erfcx_pos   [0, 2.5e307] (as erfcx, no exp)   <= 2e-15 relative [7.8e-16]
 norm_cdf    [-37.5, 8.3] (normal result)      <= 2e-15 relative [7.4e-16]
             [-38.5, -37.5] (subnormal)        <= 4 * 2**-1074 [0.90]
 norm_pdf    [-37.5, 37.5] (normal result)     <= 2e-15 relative [3.8e-16]
@@ -249,42 +249,73 @@ def erfc(x):
     return val if y <= _R1_MAX else r
 
 
-# erfcx on [0, 0.46875] (Cody's region 1) as one polynomial, so that erfcx of a
-# non-negative argument needs no exponential: Chebyshev interpolation of degree 14 in
-# t = y - 0.234375, fitted with mpmath by tests/fit_erfcx_small.py (truncation 6e-19,
-# below 1 ulp after rounding of the coefficients).
-_ERFCX_MID = 0.234375
-_EX = (0.7821033840209444, -0.7617682058356949, 0.6035639607782034, -0.4135386016855166,
-       0.25332042550407163, -0.1416666507869504, 0.07337243474350337,
-       -0.03556285293013988, 0.016259347644507136, -0.0070560296635623155,
-       0.0029211236442871604, -0.0011580895972718303, 0.00044148750862880575,
-       -0.0001664390125232788, 5.9034165254523164e-05)
+# erfcx of a non-negative argument as one rational function P(y)/Q(y), degree 11 over 12
+# (so it decays like 1/(sqrt(pi) y)), fitted to the relative error over [0, 1e8] by
+# tests/fit_erfcx.py (Loeb's re-weighted least squares with mpmath; error of the exact
+# coefficients ~5e-18).  Every coefficient is positive, so Horner's rule has no
+# cancellation for y >= 0.  Beyond 1e8, erfcx(y) = 1/(sqrt(pi) y) to 5e-17 (and y^12
+# would overflow).  No exponential, one division, 23 FMAs: about half of Cody's regions.
+_XP = (1.0,
+       2.5655049247102784,
+       3.2586108048749622,
+       2.666190646948703,
+       1.5492642558480316,
+       0.6686111115312033,
+       0.21836250138788327,
+       0.05400146400074677,
+       0.00993574017828874,
+       0.001301545958702712,
+       0.0001101145710827634,
+       4.618730084410358e-06)
+_XQ = (1.0,
+       3.6938840918057907,
+       6.4267126597341475,
+       6.976328011359525,
+       5.273229356863728,
+       2.930956767192206,
+       1.2317966589658627,
+       0.39574519044703754,
+       0.09686447465309106,
+       0.017708227438381744,
+       0.0023110233895953444,
+       0.00019517299555645316,
+       8.186485924406298e-06)
 
 
 @scalar
 def erfcx_pos(y):
-    """erfcx(y) for y >= 0, without an exponential: the polynomial above on [0, 0.46875],
-    Cody's regions 2 and 3 beyond (one division).  <= 2e-15 relative for 0 <= y <= 2.5e307
-    and subnormal beyond, as ``erfcx``; erfcx_pos(inf) = 0, NaN -> NaN.  Arguments a
-    rounding error below 0 (|y| < 1e-3) are still accurate; more negative ones are not
-    (use ``erfcx``)."""
-    t = y - _ERFCX_MID
-    p = _EX[14] * t + _EX[13]
-    p = p * t + _EX[12]
-    p = p * t + _EX[11]
-    p = p * t + _EX[10]
-    p = p * t + _EX[9]
-    p = p * t + _EX[8]
-    p = p * t + _EX[7]
-    p = p * t + _EX[6]
-    p = p * t + _EX[5]
-    p = p * t + _EX[4]
-    p = p * t + _EX[3]
-    p = p * t + _EX[2]
-    p = p * t + _EX[1]
-    p = p * t + _EX[0]
-    num, den = _cody_outer(y, y * y)
-    return p if y <= _R1_MAX else num / den
+    """erfcx(y) for y >= 0, without an exponential: the rational function above (one
+    division).  <= 2e-15 relative for 0 <= y <= 2.5e307 and subnormal beyond, as
+    ``erfcx``; erfcx_pos(inf) = 0, NaN -> NaN.  Arguments a rounding error below 0
+    (|y| < 1e-3) are still accurate; more negative ones are not (use ``erfcx``)."""
+    big = y > _R3_MAX
+    z = 0.0 if big else y                 # NaN stays NaN
+    num = _XP[11] * z + _XP[10]
+    num = num * z + _XP[9]
+    num = num * z + _XP[8]
+    num = num * z + _XP[7]
+    num = num * z + _XP[6]
+    num = num * z + _XP[5]
+    num = num * z + _XP[4]
+    num = num * z + _XP[3]
+    num = num * z + _XP[2]
+    num = num * z + _XP[1]
+    num = num * z + _XP[0]
+    den = _XQ[12] * z + _XQ[11]
+    den = den * z + _XQ[10]
+    den = den * z + _XQ[9]
+    den = den * z + _XQ[8]
+    den = den * z + _XQ[7]
+    den = den * z + _XQ[6]
+    den = den * z + _XQ[5]
+    den = den * z + _XQ[4]
+    den = den * z + _XQ[3]
+    den = den * z + _XQ[2]
+    den = den * z + _XQ[1]
+    den = den * z + _XQ[0]
+    num = _INV_SQRT_PI if big else num
+    den = y if big else den
+    return num / den
 
 
 @scalar
@@ -295,27 +326,14 @@ def erfcx(x):
     1/(sqrt(pi) x) is subnormal and the error is <= 4 * 2**-1074 absolute.
     For x < 0, erfcx(x) = 2 exp(x^2) - erfcx(-x), which overflows to inf below about
     -26.63.  erfcx(inf) = 0, erfcx(-inf) = inf.  Equal to ``erfcx_pos`` for x >= 0, bit
-    for bit; only negative arguments need the exponential.
+    for bit; only negative arguments need the exponential.  (Cody's regions, used by
+    ``erfc`` and ``norm_cdf`` below, are not needed here.)
     """
     y = abs(x)
     val = erfcx_pos(y)
     yc = 27.0 if y > 27.0 else y          # exp(27^2) = inf already
     e = _exp_sq(yc, 1.0)
     return 2.0 * e - val if x < 0.0 else val
-
-
-@scalar
-def erfcx_guess(y):
-    """erfcx(y) for y >= 0 to <= 5e-12 relative, without an exponential: for iterates that
-    a later full-precision step polishes (about 40% cheaper than ``erfcx``).
-
-    Cody's region-2 rational (fitted on [0.46875, 4]) also serves [0, 0.46875], where it
-    is within 4.7e-12 of erfcx; region 3 as in ``erfcx`` above 4.  Negative y is treated
-    as 0.
-    """
-    y = y if y > 0.0 else 0.0
-    num, den = _cody_outer(y, y * y)
-    return num / den
 
 
 @scalar
