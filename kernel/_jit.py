@@ -108,30 +108,26 @@ def scalar(fn):
                       cache=True, nogil=True)(fn)
 
 
-def loop(fn=None, *, interleave=INTERLEAVE):
-    """Parallel array loop over preallocated outputs."""
-    if fn is None:
-        return lambda f: loop(f, interleave=interleave)
-    return _interleaved(numba.njit(parallel=True, error_model="numpy",
+def _compiled(fn, parallel: bool, interleave: int):
+    return _interleaved(numba.njit(parallel=parallel, error_model="numpy",
                                    fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
                         interleave)
 
 
-def rows(fn=None, *, interleave=INTERLEAVE):
+def loop(fn):
+    """Parallel array loop over preallocated outputs."""
+    return _compiled(fn, True, INTERLEAVE)
+
+
+def rows(fn, interleave: int = INTERLEAVE):
     """Serial loop over rows ``a <= i < e`` (first two arguments), called per block;
     ``interleave``: LLVM's vector interleave count for it (0: LLVM's choice)."""
-    if fn is None:
-        return lambda f: rows(f, interleave=interleave)
-    return _interleaved(numba.njit(parallel=False, error_model="numpy",
-                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
-                        interleave)
+    return _compiled(fn, False, interleave)
 
 
 def serial_loop(fn):
     """Single-threaded array loop (used where parallel overhead dominates)."""
-    return _interleaved(numba.njit(parallel=False, error_model="numpy",
-                                   fastmath=set(FASTMATH), cache=True, nogil=True)(fn),
-                        INTERLEAVE)
+    return _compiled(fn, False, INTERLEAVE)
 
 
 def specialise(template, name: str, **consts):
