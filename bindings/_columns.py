@@ -31,6 +31,8 @@ import pyarrow.compute as pc
 
 from volsweep.kernel import black as _black
 
+from ._output import new_array
+
 MODELS = ("bsm", "black76")
 UNDERLYING = {"bsm": "spot", "black76": "forward"}
 KNOWN_NAMES = ("spot", "forward", "strike", "expiry_years", "expiry", "as_of", "rate",
@@ -186,7 +188,7 @@ class ColumnPlan:
         if "discount" in self.source:
             return self.floats(batch, "discount")
         r = self.floats(batch, "rate")
-        return _black.discount_factors(r, T, np.empty(len(T)))
+        return _black.discount_factors(r, T, new_array(len(T)))
 
     def div_yield(self, batch) -> np.ndarray:
         if "div_yield" in self.source:

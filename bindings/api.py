@@ -24,8 +24,8 @@ from volsweep.kernel._jit import BLOCK as _BLOCK
 
 from ._columns import ColumnPlan, check_model
 from ._input import as_batches
-from ._output import (append, check_no_clash, float_column, output_schema, status_column,
-                      validity_buffer)
+from ._output import (append, check_no_clash, float_column, new_array, output_schema,
+                      status_column, validity_buffer)
 
 
 _LAUNCH_LOCK = threading.Lock()
@@ -153,8 +153,8 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
         und, K, T, D, q, cp = _forward_inputs(plan, batch)
         vol = plan.floats(batch, "vol")
         n = batch.num_rows
-        p = np.empty(n)
-        st = np.empty(n, np.int8)
+        p = new_array(n)
+        st = new_array(n, np.int8)
         if plan.model == "bsm":
             _black.bsm_price(und, K, T, D, q, vol, cp, p, st)
         else:
@@ -171,8 +171,8 @@ _INPUT_PROBLEM = np.int8(_status.OUT_OF_RANGE)  # codes 1..7 are input problems
 
 def _iv_kernel(plan, premium, und, K, T, D, q, cp):
     n = len(premium)
-    iv = np.empty(n)
-    st = np.empty(n, np.int8)
+    iv = new_array(n)
+    st = new_array(n, np.int8)
     if plan.model == "bsm":
         _implied.bsm_iv(premium, und, K, T, D, q, cp, iv, st)
     else:
@@ -201,9 +201,9 @@ def _quote_problems(bid, ask, st_bid, st_ask, st_mid, ivs):
 
 def _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask):
     n = len(premium)
-    iv = np.empty(n)
-    out = np.empty((bin(mask).count("1"), n))
-    st = np.empty(n, np.int8)
+    iv = new_array(n)
+    out = new_array((bin(mask).count("1"), n))
+    st = new_array(n, np.int8)
     if plan.model == "bsm":
         n_nonfinite = _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
     else:
@@ -293,8 +293,8 @@ def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
     ok rows with a non-finite Greek)."""
     mask = _greeks.greek_mask(which, plan.model)
     n = len(K)
-    out = np.empty((bin(mask).count("1"), n))
-    st = np.empty(n, np.int8)
+    out = new_array((bin(mask).count("1"), n))
+    st = new_array(n, np.int8)
     if plan.model == "bsm":
         n_nonfinite = _greeks.bsm_greeks(und, K, T, D, q, vol, cp, mask, out, st)
     else:
