@@ -31,9 +31,22 @@ def hash_sources(folder: str) -> bytes:
 
 _STAMP: list = []
 
+
+def _interleave_setting() -> int:
+    value = os.environ.get("VOLSWEEP_INTERLEAVE", "3")
+    try:
+        count = int(value)
+    except ValueError:
+        count = -1
+    if not 0 <= count <= 16:
+        raise ValueError(f"VOLSWEEP_INTERLEAVE must be an integer from 0 (LLVM's choice) to "
+                         f"16, got {value!r}")
+    return count
+
+
 # Code-generation settings that change the machine code without changing the sources; they
 # are part of the stamp, so each setting keeps its own compiled cache (see _jit.INTERLEAVE).
-INTERLEAVE = int(os.environ.get("VOLSWEEP_INTERLEAVE", "3"))
+INTERLEAVE = _interleave_setting()
 
 
 def kernel_source_hash() -> bytes:

@@ -190,9 +190,13 @@ _R3_MAX = 1e8
 
 
 @scalar
-def _cody_outer(y, s):
-    """(num, den) of erfcx(y) = num / den in Cody's regions 2 and 3 (chosen by y >= 0),
-    s = y*y; the caller divides, once, after any further selection."""
+def _cody(x, y):
+    """y = |x|.  Returns erfc(x) if y <= 0.46875, else erfcx(y); one division."""
+    s = y * y
+    # region 1, in s = x^2: erfc(x) = (Q1 - x P1) / Q1
+    p1 = (((_A5 * s + _A1) * s + _A2) * s + _A3) * s + _A4
+    q1 = (((s + _B1) * s + _B2) * s + _B3) * s + _B4
+    num1 = q1 - x * p1
     # region 2, in y
     p2 = ((((((((_C9 * y + _C1) * y + _C2) * y + _C3) * y + _C4) * y + _C5) * y + _C6)
            * y + _C7) * y + _C8)
@@ -208,18 +212,6 @@ def _cody_outer(y, s):
     den = y if y > _R3_MAX else den3
     num = p2 if y <= _R2_MAX else num
     den = q2 if y <= _R2_MAX else den
-    return num, den
-
-
-@scalar
-def _cody(x, y):
-    """y = |x|.  Returns erfc(x) if y <= 0.46875, else erfcx(y); one division."""
-    s = y * y
-    # region 1, in s = x^2: erfc(x) = (Q1 - x P1) / Q1
-    p1 = (((_A5 * s + _A1) * s + _A2) * s + _A3) * s + _A4
-    q1 = (((s + _B1) * s + _B2) * s + _B3) * s + _B4
-    num1 = q1 - x * p1
-    num, den = _cody_outer(y, s)
     num = num1 if y <= _R1_MAX else num
     den = q1 if y <= _R1_MAX else den
     return num / den

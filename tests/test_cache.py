@@ -75,7 +75,7 @@ def test_forced_interleave_does_not_leak_into_other_numba_code(tmp_path):
     assert before > 0 and after == before and depth == 0
 
 
-def test_interleave_setting_is_part_of_the_stamp():
+def test_interleave_setting_is_part_of_the_stamp_and_checked():
     import os
     import subprocess
     import sys
@@ -86,3 +86,7 @@ def test_interleave_setting_is_part_of_the_stamp():
         stamps.add(subprocess.run([sys.executable, "-c", code], env=env, check=True,
                                   capture_output=True, text=True).stdout.strip())
     assert len(stamps) == 2
+    env = dict(os.environ, VOLSWEEP_INTERLEAVE="three")
+    r = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
+    assert r.returncode != 0 and "VOLSWEEP_INTERLEAVE" in r.stderr
+
