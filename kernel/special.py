@@ -9,20 +9,23 @@ Accuracy, asserted by tests/test_special.py against mpmath at 50 digits (measure
 the reference table in brackets).  Where the true result is subnormal, relative error is
 meaningless and the bound is absolute, in units of the smallest subnormal 2**-1074.
 
-==========  ================================  ==========================================
-function    range                             bound [measured]
-==========  ================================  ==========================================
-exp         [-745.13, 709.78]                 <= 1 ulp [0.59; subnormal results 0.72]
-log         every positive double             <= 1 ulp [0.66; subnormal inputs 0.50]
-erfc        [-6, 26.55] (normal result)       <= 2e-15 relative [5.6e-16]
-            (26.55, 27.3] (subnormal)         <= 4 * 2**-1074 [0.58]; 0 beyond
-erfcx       [-26.628, 2.5e307]                <= 2e-15 relative [7.8e-16]
-            up to the largest double          subnormal result, <= 4 * 2**-1074 [0.52]
-erfcx_pos   [0, 2.5e307] (as erfcx, no exp)   <= 2e-15 relative [7.8e-16]
-norm_cdf    [-37.5, 8.3] (normal result)      <= 2e-15 relative [7.4e-16]
-            [-38.5, -37.5] (subnormal)        <= 4 * 2**-1074 [0.90]
-norm_pdf    [-37.5, 37.5] (normal result)     <= 2e-15 relative [3.8e-16]
-==========  ================================  ==========================================
+================  ================================  ==========================================
+function          range                             bound [measured]
+================  ================================  ==========================================
+exp               [-745.13, 709.78]                 <= 1 ulp [0.59; subnormal results 0.72]
+log               every positive double             <= 1 ulp [0.66; subnormal inputs 0.50]
+erfc              [-6, 26.55] (normal result)       <= 2e-15 relative [5.6e-16]
+                  (26.55, 27.3] (subnormal)         <= 4 * 2**-1074 [0.58]; 0 beyond
+erfcx             [-26.628, 2.5e307]                <= 2e-15 relative [7.8e-16]
+                  up to the largest double          subnormal result, <= 4 * 2**-1074 [0.52]
+erfcx_pos         [0, 2.5e307] (as erfcx, no exp)   <= 2e-15 relative [7.8e-16]
+erfcx_pos_approx  [0, 2.5e307] (guesses only)       <= 1e-7 relative [8.7e-8]
+exp_approx        [-700, 700] (guesses only)        <= 1e-8 relative
+log_approx        positive normal (guesses only)    <= 1e-9 absolute
+norm_cdf          [-37.5, 8.3] (normal result)      <= 2e-15 relative [7.4e-16]
+                  [-38.5, -37.5] (subnormal)        <= 4 * 2**-1074 [0.90]
+norm_pdf          [-37.5, 37.5] (normal result)     <= 2e-15 relative [3.8e-16]
+================  ================================  ==========================================
 
 Special values: NaN in -> NaN out everywhere.  exp(+inf) = inf, exp(-inf) = 0,
 overflow -> inf, underflow -> 0 (gradually, through the subnormals).  log(+-0) = -inf,
@@ -105,6 +108,31 @@ def exp(x):
     return _exp_raw(xc)
 
 
+_EXPA_MAX = 700.0                       # 2**n stays one normal factor
+
+
+@scalar
+def exp_approx(x):
+    """e**x to <= 1e-8 relative for |x| <= 700, for initial guesses only: the same
+    Cody-Waite reduction as ``exp`` with a degree-7 Taylor polynomial (truncation 5.3e-9)
+    and no error-free tail, 2**n as one factor.  Arguments beyond +-700 are clamped there
+    (so the result is e**+-700, not inf or 0); NaN -> NaN."""
+    xc = _EXPA_MAX if x > _EXPA_MAX else x
+    xc = -_EXPA_MAX if xc < -_EXPA_MAX else xc
+    t = fma(xc, _LOG2E, _SHIFT)
+    n = t - _SHIFT
+    ni = f64_as_i64(t) - _SHIFT_BITS
+    r = fma(-n, _LN2_LO, fma(-n, _LN2_HI, xc))
+    q = _E7 * r + _E6
+    q = q * r + _E5
+    q = q * r + _E4
+    q = q * r + _E3
+    q = q * r + _E2
+    q = q * r + 1.0
+    q = q * r + 1.0
+    return q * i64_as_f64((ni + 1023) << 52)
+
+
 # ---------------------------------------------------------------------------------------
 # log: fdlibm / musl e_log.c.  x = 2**k (1 + f) with sqrt(2)/2 <= 1 + f < sqrt(2), found by
 # integer arithmetic on the bits (subnormals are first scaled by 2**54);
@@ -147,6 +175,27 @@ def log(x):
     res = -_INF if x == 0.0 else res
     res = _NAN if x < 0.0 else res
     return res
+
+
+@scalar
+def log_approx(x):
+    """Natural logarithm to <= 1e-9 absolute for positive normal x, for initial guesses and
+    first iterations only: the reduction of ``log``, then 2 atanh(s) by its series to s^9
+    (|s| <= 0.172, truncation 7e-10) without the error-free recombination.  NaN outside
+    (0, inf) and for NaN; subnormal arguments (not scaled first) give inaccurate values."""
+    ix = f64_as_i64(x) + _ONE_MINUS_SQRT1_2_BITS
+    k = (ix >> 52) - 1023
+    m = i64_as_f64((ix & _MANT_MASK) + _BITS_SQRT1_2)
+    f = m - 1.0
+    dk = i64_as_f64(k + _SHIFT_BITS) - _SHIFT
+    s = f / (2.0 + f)
+    z = s * s
+    q = z * (1.0 / 9.0) + (1.0 / 7.0)
+    q = q * z + (1.0 / 5.0)
+    q = q * z + (1.0 / 3.0)
+    q = q * z + 1.0
+    res = fma(dk, _LN2_HI + _LN2_LO, 2.0 * s * q)
+    return res if (x > 0.0 and x < _INF) else _NAN
 
 
 # ---------------------------------------------------------------------------------------
@@ -307,6 +356,45 @@ def erfcx_pos(y):
     den = den * z + _XQ[0]
     num = _INV_SQRT_PI if big else num
     den = y if big else den
+    return num / den
+
+
+# Degree 4/5 fit of the same form (same script, ``--degree 4``): 8.7e-8 relative for the
+# exact coefficients, for iterates that a later full-precision step polishes.
+_XP4 = (1.0000000326096183, 1.334955898231351, 0.8367621377378686, 0.2808995257668356,
+        0.0442078884929722)
+_XQ4 = (1.0, 2.4633380568137206, 2.61629822521154, 1.5222339868298354,
+        0.49788290560494325, 0.07835643541682451)
+
+
+@scalar
+def erfcx_pos_approx_parts(y):
+    """(num, den) with erfcx(y) ~ num / den to <= 1e-7 relative, y >= 0 (see
+    ``erfcx_pos_approx``), so that a caller combining two values needs one division.
+    den <= 8e38 for y <= 1e8; beyond, (1/sqrt(pi), y)."""
+    big = y > _R3_MAX
+    z = 0.0 if big else y
+    num = _XP4[4] * z + _XP4[3]
+    num = num * z + _XP4[2]
+    num = num * z + _XP4[1]
+    num = num * z + _XP4[0]
+    den = _XQ4[5] * z + _XQ4[4]
+    den = den * z + _XQ4[3]
+    den = den * z + _XQ4[2]
+    den = den * z + _XQ4[1]
+    den = den * z + _XQ4[0]
+    num = _INV_SQRT_PI if big else num
+    den = y if big else den
+    return num, den
+
+
+@scalar
+def erfcx_pos_approx(y):
+    """erfcx(y) for y >= 0 to <= 1e-7 relative (9 FMAs and a division instead of 23 and
+    one): for initial guesses and first iterations, never for a result.  Its error is a
+    smooth function of y (that of a near-minimax rational), so a difference of two values
+    at nearby arguments keeps about the same relative accuracy.  0 at inf, NaN -> NaN."""
+    num, den = erfcx_pos_approx_parts(y)
     return num / den
 
 

@@ -1,6 +1,7 @@
 """Fit the rational function kernel/special.py uses for erfcx on [0, 1e8].
 
-    .venv/bin/python tests/fit_erfcx.py        # about two minutes; prints the tuples
+    .venv/bin/python tests/fit_erfcx.py              # about two minutes; prints the tuples
+    .venv/bin/python tests/fit_erfcx.py --degree 4   # the guess-grade _XP4 / _XQ4 (8.7e-8)
 
 erfcx(y) = exp(y^2) erfc(y) ~ P(y) / Q(y) with P of degree 11 and Q of degree 12 (so the
 ratio decays like 1/(sqrt(pi) y), as erfcx does), Q(0) = 1.  Method: linearised least
@@ -12,6 +13,8 @@ the signs (all positive, so Horner's rule is cancellation-free for y >= 0).
 tests/test_special.py checks the rounded coefficients in the kernel against the mpmath
 reference table (<= 2e-15 relative).
 """
+
+import argparse
 
 import mpmath as mp
 
@@ -46,16 +49,22 @@ def fit(m=DEG, n=NODES, iterations=ITERATIONS, hi=mp.mpf(400)):
     return p, q
 
 
-def main():
+def main(argv=None):
+    ap = argparse.ArgumentParser(description="fit erfcx on [0, 1e8] by a rational function")
+    ap.add_argument("--degree", type=int, default=DEG, help="degree of P (Q: one more)")
+    deg = ap.parse_args(argv).degree
     mp.mp.dps = 60
-    p, q = fit()
+    small = deg != DEG
+    p, q = fit(m=deg, n=max(60, 30 * deg) if small else NODES,
+               iterations=12 if small else ITERATIONS)
     grid = ([mp.mpf(k) / 200 for k in range(4001)]
             + [mp.mpf(20) * mp.mpf("1.02") ** k for k in range(800)])
     err = max(abs(sum(c * y ** j for j, c in enumerate(p))
                   / sum(c * y ** j for j, c in enumerate(q)) / erfcx(y) - 1) for y in grid)
-    print(f"P degree {DEG}, Q degree {DEG + 1}: max relative error of the exact "
+    print(f"P degree {deg}, Q degree {deg + 1}: max relative error of the exact "
           f"coefficients {float(err):.2g}; all positive: {all(c > 0 for c in p + q)}")
-    for name, cs in (("_XP", p), ("_XQ", q)):
+    suffix = "" if deg == DEG else str(deg)
+    for name, cs in (("_XP" + suffix, p), ("_XQ" + suffix, q)):
         print(f"{name} = (" + ",\n       ".join(repr(float(c)) for c in cs) + ")")
 
 

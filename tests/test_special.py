@@ -431,3 +431,52 @@ def test_erfcx_pos_accuracy_and_agreement_with_erfcx():
     with mpmath.workdps(40):
         want = float(mpmath.exp(mpmath.mpf(-1e-4) ** 2) * mpmath.erfc(mpmath.mpf(-1e-4)))
     assert special.erfcx_pos(-1e-4) == pytest.approx(want, rel=2e-15)
+
+
+@_uncached(loop)
+def _par_guess_grade(x, out_erfcx, out_exp, out_log):
+    for i in numba.prange(x.size):
+        out_erfcx[i] = special.erfcx_pos_approx(abs(x[i]))
+        out_exp[i] = special.exp_approx(x[i])
+        out_log[i] = special.log_approx(x[i])
+
+
+def _guess_grade(x):
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    outs = tuple(np.empty_like(x) for _ in range(3))
+    _par_guess_grade(x, *outs)
+    return outs
+
+
+def test_guess_grade_functions_against_mpmath():
+    # reference: mpmath at 50 digits (tests/data/special_reference.npz).  These serve only
+    # initial guesses and the first Householder step of the implied vol, which a
+    # full-precision step follows; their bounds are those that step needs.
+    x, ref, frac = (TABLE[f"erfcx_{k}"] for k in ("x", "ref", "frac"))
+    keep = (x >= 0.0) & (np.abs(ref) >= DBL_MIN)
+    for lo, hi in ((0.0, 0.5), (0.5, 4.0), (4.0, 30.0), (30.0, 1e8), (1e8, 1e300)):
+        assert np.count_nonzero(keep & (x >= lo) & (x < hi)) > 50, (lo, hi)
+    y = _guess_grade(x[keep])[0]
+    rel = rel_error(y, ref[keep], frac[keep])
+    print(f"erfcx_pos_approx: max rel {rel.max():.3g}")
+    assert rel.max() <= 1e-7
+    x, ref, frac = (TABLE[f"exp_{k}"] for k in ("x", "ref", "frac"))
+    keep = np.abs(x) <= 700.0
+    assert np.count_nonzero(keep & (x < -600)) > 20 and np.count_nonzero(keep & (x > 600)) > 20
+    y = _guess_grade(x[keep])[1]
+    rel = rel_error(y, ref[keep], frac[keep])
+    print(f"exp_approx: max rel {rel.max():.3g}")
+    assert rel.max() <= 1e-8
+    x, ref, frac = (TABLE[f"log_{k}"] for k in ("x", "ref", "frac"))
+    keep = (x >= DBL_MIN) & (x < np.inf)
+    assert x[keep].min() < 1e-300 and x[keep].max() > 1e300
+    y = _guess_grade(x[keep])[2]
+    err = np.abs(y - ref[keep])          # the reference is within half an ulp
+    print(f"log_approx: max abs {err.max():.3g}")
+    assert err.max() <= 1e-9
+    # outside their ranges: exp clamps to e^+-700, log gives NaN, erfcx 0 at inf
+    e, ex, lg = _guess_grade([np.nan, np.inf, -np.inf, 0.0, -1.0, 800.0])
+    assert np.isnan(e[0]) and e[1] == 0.0 and e[2] == 0.0
+    assert np.isnan(ex[0]) and ex[5] == pytest.approx(math.exp(700.0), rel=1e-8)
+    assert ex[2] == pytest.approx(math.exp(-700.0), rel=1e-8) and ex[3] == 1.0
+    assert np.all(np.isnan(lg[:5]))
