@@ -81,13 +81,14 @@ def numpy_newton(c, steps=8):
     sqT = np.sqrt(T)
     x = np.log(F / K)
     sig = np.sqrt(2 * np.pi / T) * P / (D * F)
-    for _ in range(steps):
-        s = np.maximum(sig, 1e-8) * sqT
-        d1 = x / s + s / 2
-        d2 = d1 - s
-        price = D * th * (F * ndtr(th * d1) - K * ndtr(th * d2))
-        vega = D * F * np.exp(-0.5 * d1 * d1) / SQRT2PI * sqT
-        sig = sig - (price - P) / vega
+    with np.errstate(all="ignore"):       # it diverges in the wings; that is measured
+        for _ in range(steps):
+            s = np.maximum(sig, 1e-8) * sqT
+            d1 = x / s + s / 2
+            d2 = d1 - s
+            price = D * th * (F * ndtr(th * d1) - K * ndtr(th * d2))
+            vega = D * F * np.exp(-0.5 * d1 * d1) / SQRT2PI * sqT
+            sig = sig - (price - P) / vega
     return sig
 
 
