@@ -56,7 +56,8 @@ from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
 from .black import _is_inf, _is_nan, bsm_inputs, input_status
-from .special import erfcx_pos, erfcx_pos_approx, erfcx_pos_approx_parts, exp_approx, log, log_approx
+from .special import (erfcx_pos, erfcx_pos_approx, erfcx_pos_approx_parts, exp_approx, log,
+                      log_approx)
 
 NAN = np.nan
 INF = np.inf
@@ -194,6 +195,8 @@ def _householder(s, x, lt, upper, sc, precise):
     else:
         na, da = erfcx_pos_approx_parts(za)
         nb, db = erfcx_pos_approx_parts(zb)
+        # da db overflows only if both arguments exceed ~1e154 (an absurd iterate): sw = 0,
+        # the objective is NaN and the guard below leaves s as it is
         sw = (na * db + nb * da if upper else na * db - nb * da) / (da * db)
     ell = (log(0.5 * sw) if precise else log_approx(0.5 * sw)) - 0.5 * d1 * d1
     # ig1 = y / (s y') = +-sqrt(2 pi) sw / (2 s), the inverse elasticity of the objective.
