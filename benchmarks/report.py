@@ -10,7 +10,8 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   and the ratios price/floor, iv/price, greeks/price, sweep/price, 2 threads / 1 thread;
 * against the straightforward alternatives: whole-array numpy/scipy prices and Greeks,
   a vectorised numpy Newton for implied vol, scipy's brentq per contract (subsample);
-* table-level calls (Arrow in, Arrow out) against the kernel calls on the same columns;
+* table-level calls (Arrow in, Arrow out) against the kernel calls on the same columns,
+  at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call);
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -185,6 +186,49 @@ def table_section(n: int, repeats: int) -> None:
               f"{r[''] / r[' fresh']:6.3f}        {r[''] / r['+D']:6.3f}")
 
 
+
+def small_batch_section(repeats: int, sizes=(100, 10_000)) -> None:
+    """Table-level calls on small batches (the embedded case: a risk engine calling per
+    book or per underlying): the fixed cost of a call beside the kernels it runs."""
+    import pyarrow as pa
+
+    import volsweep
+    from volsweep.data_gen import make_snapshot
+
+    print("\n3b. Small batches (BSM): table-level call against discount factors + kernel "
+          "(microseconds per call, median)")
+    for n in sizes:
+        snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0).drop_columns(["bid", "ask"])
+        snap = pa.Table.from_batches(snap.combine_chunks().to_batches())
+        col = {k: snap.column(k).to_numpy() for k in
+               ("spot", "strike", "expiry_years", "rate", "div_yield", "true_vol", "premium")}
+        cp = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1, -1)
+        cp = cp.astype(np.int8)
+        T = col["expiry_years"]
+        S, K, q = col["spot"], col["strike"], col["div_yield"]
+
+        def price_k():
+            D = black.discount_factors(col["rate"], T, np.empty(n))
+            black.bsm_price(S, K, T, D, q, col["true_vol"], cp, np.empty(n),
+                            np.empty(n, np.int8))
+
+        def iv_k():
+            D = black.discount_factors(col["rate"], T, np.empty(n))
+            implied.bsm_iv(col["premium"], S, K, T, D, q, cp, np.empty(n),
+                           np.empty(n, np.int8))
+
+        calls = 20   # per timing: one 100-row call is ~0.1 ms, too short to time alone
+        runs = {name: (lambda f=f: [f() for _ in range(calls)]) for name, f in {
+            "price": lambda: volsweep.price(snap, columns={"vol": "true_vol"}),
+            "price kernel": price_k,
+            "implied_vol": lambda: volsweep.implied_vol(snap),
+            "implied_vol kernel": iv_k}.items()}
+        t = _rounds(runs, max(repeats, 60))
+        us = {k: v / calls * 1e6 for k, v in t.items()}
+        print(f"  {n:>7,d} rows: price {us['price']:7.1f} vs {us['price kernel']:6.1f}   "
+              f"implied_vol {us['implied_vol']:7.1f} vs {us['implied_vol kernel']:6.1f}")
+
+
 _FIRST_CALL = """
 import time
 t0 = time.perf_counter()
@@ -289,6 +333,7 @@ def main(argv=None, rows: int | None = None) -> int:
     print(f"   machine: {machine()}")
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
+    small_batch_section(args.repeats)
     latency_section()
     if args.asm:
         asm_section()
