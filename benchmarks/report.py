@@ -132,18 +132,25 @@ def alternatives_section(n: int, repeats: int, brentq_rows: int = 2000) -> None:
           f"{acc_ours[1]:.2f})")
 
 
-def table_section(n: int, repeats: int) -> None:
+def _bsm_snapshot(n: int):
+    """A one-chunk synthetic BSM snapshot of n rows (no bad rows, premium quotes), and the
+    kernel inputs the table-level calls derive from it: float columns and call/put codes."""
     import pyarrow as pa
 
-    import volsweep
     from volsweep.data_gen import make_snapshot
 
     snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0).drop_columns(["bid", "ask"])
     snap = pa.Table.from_batches(snap.combine_chunks().to_batches())
-    # the kernel inputs the table-level calls derive (continuous rate -> discount factor)
     col = {k: snap.column(k).to_numpy() for k in
            ("spot", "strike", "expiry_years", "rate", "div_yield", "true_vol", "premium")}
     cp = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1, -1).astype(np.int8)
+    return snap, col, cp
+
+
+def table_section(n: int, repeats: int) -> None:
+    import volsweep
+
+    snap, col, cp = _bsm_snapshot(n)
     T = col["expiry_years"]
     D = black.discount_factors(col["rate"], T, np.empty(n))   # as the bindings derive it
     args = (col["spot"], col["strike"], T, D, col["div_yield"])
@@ -190,20 +197,12 @@ def table_section(n: int, repeats: int) -> None:
 def small_batch_section(repeats: int, sizes=(100, 10_000)) -> None:
     """Table-level calls on small batches (the embedded case: a risk engine calling per
     book or per underlying): the fixed cost of a call beside the kernels it runs."""
-    import pyarrow as pa
-
     import volsweep
-    from volsweep.data_gen import make_snapshot
 
     print("\n3b. Small batches (BSM): table-level call against discount factors + kernel "
           "(microseconds per call, median)")
     for n in sizes:
-        snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0).drop_columns(["bid", "ask"])
-        snap = pa.Table.from_batches(snap.combine_chunks().to_batches())
-        col = {k: snap.column(k).to_numpy() for k in
-               ("spot", "strike", "expiry_years", "rate", "div_yield", "true_vol", "premium")}
-        cp = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1, -1)
-        cp = cp.astype(np.int8)
+        snap, col, cp = _bsm_snapshot(n)
         T = col["expiry_years"]
         S, K, q = col["spot"], col["strike"], col["div_yield"]
 
