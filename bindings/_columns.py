@@ -54,6 +54,7 @@ class ColumnPlan:
     source: dict = field(default_factory=dict)   # logical name -> source column name
     as_of_value: object = None                    # scalar as_of (seconds, ns), if given
     quote: str = "none"                           # "premium", "bid_ask" or "none"
+    plain: set = field(default_factory=set)       # logical inputs stored as plain float64
 
     # ------------------------------------------------------------------ building
     @classmethod
@@ -147,7 +148,10 @@ class ColumnPlan:
 
     def _check_types(self, schema: pa.Schema) -> None:
         for logical, col in self.source.items():
-            t = _value_type(schema.field(col).type)
+            raw = schema.field(col).type
+            if raw == pa.float64():
+                self.plain.add(logical)     # read without decoding or casting
+            t = _value_type(raw)
             if pa.types.is_null(t):
                 continue  # an all-null column is missing data: every row gets a status
             if logical == "is_call":
@@ -166,7 +170,10 @@ class ColumnPlan:
 
     # ---------------------------------------------------------------- extraction
     def floats(self, batch: pa.RecordBatch, logical: str) -> np.ndarray:
-        return _to_float64(batch.column(self.source[logical]))
+        col = batch.column(self.source[logical])
+        if logical in self.plain and not col.null_count:
+            return col.to_numpy()           # zero-copy view of a plain float64 column
+        return _to_float64(col)
 
     def expiry_years(self, batch) -> np.ndarray:
         if "expiry_years" in self.source:

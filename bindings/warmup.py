@@ -26,7 +26,8 @@ def warmup(models=None, which=None, sweep: bool = True, bid_ask: bool = False) -
     ``models``: the model names to prepare (None: every model of the registry); ``which``:
     the Greeks set as for ``greeks()`` (``None``: all of them; each distinct set is its own
     compiled kernel); ``sweep``: also the fused implied-vol + Greeks pass; ``bid_ask``: also
-    the one-pass bid/ask kernel (its Greeks set always holds vega).  Returns the seconds
+    the one-pass bid/ask kernels (for ``sweep``: the Greeks set plus vega; for
+    ``implied_vol``: vega alone).  Returns the seconds
     spent per kernel.  Both code paths (a single block, called directly, and the
     multi-threaded loop) are touched, on ``BLOCK + 1`` rows of valid inputs.
     """
@@ -72,11 +73,11 @@ def warmup(models=None, which=None, sweep: bool = True, bid_ask: bool = False) -
             timed(f"{name} sweep",
                   lambda s: kern["sweep"](premium[s], *cols(s), cp[s], mask, iv[s],
                                           np.ascontiguousarray(out[:, s]), st[s]))
-        if bid_ask:
-            m2 = mask | _VEGA
+        # bid/ask: the Greeks set asked for plus vega (sweep), and vega alone (implied_vol)
+        for m2 in sorted({mask | _VEGA, _VEGA}) if bid_ask else ():
             out2 = np.empty((bin(m2).count("1"), n))
             more = [np.empty(n) for _ in range(3)] + [np.empty(n, np.int8) for _ in range(2)]
-            timed(f"{name} bid_ask",
+            timed(f"{name} bid_ask {m2:04x}",
                   lambda s: kern["bid_ask"](0.99 * premium[s], 1.01 * premium[s], *cols(s),
                                             cp[s], m2, more[0][s], more[1][s], more[2][s],
                                             iv[s], np.ascontiguousarray(out2[:, s]),

@@ -45,8 +45,24 @@ from .special import INF, NAN, SQRT1_2, _exp_sq, erfcx_pos, exp, log
 
 
 @scalar
-def otm_ratio(x, s):
-    """Out-of-the-money time value per upper bound, otm / min(F, K), for x <= 0, s > 0.
+def otm_value(A, AE, ea, eb, wing):
+    """The out-of-the-money time value of the pair, undiscounted, from its parts -- the one
+    place this combination is written (the price here and inside the Greeks; the
+    implied-vol solver evaluates its logarithm per A, ln E + ln(ea -+ eb), in
+    kernel/implied.py).
+
+    A = min(F, K); AE = A E with E = exp(-d1^2/2) / 2 of the OTM option (= F phi(d1)
+    sqrt(pi/2) for either option of the pair); ea = erfcx(|d1|/sqrt2) >= eb =
+    erfcx(|d2|/sqrt2) of the OTM option; ``wing`` (its d1 <= 0): AE (ea - eb); core:
+    A - AE (ea + eb) (A Phi(d1) written as A - A Phi(-d1) through the same E).  Both forms
+    are free of cancellation beyond the problem's own.
+    """
+    return AE * (ea - eb) if wing else A - AE * (ea + eb)
+
+
+@scalar
+def otm_time_value(A, x, s):
+    """Out-of-the-money time value, undiscounted, for x = -|ln F/K| <= 0, s > 0, A = min(F, K).
 
     ``h = x/s`` may be -inf (s -> 0), giving 0.  The common factor is
     E = exp(-d1^2/2) / 2 = exp(-a^2) / 2 with a^2 split exactly, so only the rounding of a
@@ -58,21 +74,7 @@ def otm_ratio(x, s):
     b = (t - h) * SQRT1_2
     ya = abs(a)
     e = 0.5 * _exp_sq(40.0 if ya > 40.0 else ya, -1.0)   # exp(-1600) = 0
-    return otm_ratio_of(e, erfcx_pos(ya), erfcx_pos(b), a >= 0.0)
-
-
-@scalar
-def otm_ratio_of(e, ea, eb, wing):
-    """The out-of-the-money time value per min(F, K) from its parts -- the one place this
-    combination is written (the price here, the price inside the Greeks; the implied-vol
-    solver evaluates its logarithm, ln e + ln(ea -+ eb), in kernel/implied.py).
-
-    e = exp(-d1^2/2) / 2 of the OTM option, ea = erfcx(|d1|/sqrt2), eb = erfcx(|d2|/sqrt2);
-    ``wing`` (d1 <= 0): e (ea - eb); core: 1 - e (ea + eb) (A Phi(d1) written as
-    A - A Phi(-d1) through the same e).  Both forms are free of cancellation beyond the
-    problem's own.
-    """
-    return e * (ea - eb) if wing else 1.0 - e * (ea + eb)
+    return otm_value(A, A * e, erfcx_pos(ya), erfcx_pos(b), a >= 0.0)
 
 
 @scalar
@@ -82,7 +84,7 @@ def black_price(F, K, s, D, cp):
     xo = -abs(x)
     A = min(F, K)
     ss = s if s > 0.0 else 1.0
-    otm = A * otm_ratio(xo, ss)
+    otm = otm_time_value(A, xo, ss)
     otm = otm if s > 0.0 else 0.0
     intrinsic = max(cp * (F - K), 0.0)
     return D * (intrinsic + otm)

@@ -47,7 +47,7 @@ Everything comes from one set of intermediates per row: one log (ln F/K), one ex
 0.5 erfc(-z/sqrt2) would round z/sqrt2), a log of D when a rate term is wanted, and
 reciprocals shared by the Greeks (divisions are the slowest vector operation).  Phi(+|z|)
 is 1 - Phi(-|z|).  The price V (for theta and the Black-76 rho) is rebuilt from the same
-tails in the out-of-the-money form of kernel/black.py (``otm_ratio_of``, the one place it
+tails in the out-of-the-money form of kernel/black.py (``otm_value``, the one place it
 is written): intrinsic plus min(F, K) times the OTM ratio, so it carries no cancellation
 beyond the problem's own.  The
 BSM theta keeps r V and the carry term apart (not q A N1 - r K D N2, whose two terms
@@ -97,7 +97,7 @@ from . import status as S
 from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar, specialise
-from .black import bsm_inputs, input_status, otm_ratio_of
+from .black import bsm_inputs, input_status, otm_value
 from .special import INF, INV_SQRT2PI, NAN, SQRT1_2, SQRT_PI_2, erfcx_pos, exp, log
 
 # Phi(-|z|) = sqrt(pi/2) erfcx(|z|/sqrt2) phi(z)
@@ -187,12 +187,11 @@ def _shared(F, K, T, D, vol, cp):
     N1 = c1 if cp * k1 <= 0.0 else 1.0 - c1
     N2 = c2 if cp * k2 <= 0.0 else 1.0 - c2
 
-    # the out-of-the-money option of the pair (black.otm_ratio_of): for F > K the put, whose
-    # d1, d2 are -d2, -d1 and whose e^{-d1^2/2}/2 is g1 F/K
+    # the out-of-the-money option of the pair (black.otm_value): for F > K the put, whose
+    # d1, d2 are -d2, -d1; A E = F g1 for either
     up = x > 0.0
     wing = (d2 >= 0.0) if up else (d1 <= 0.0)
-    otm = min(F, K) * otm_ratio_of(g1 * m if up else g1, e2 if up else e1,
-                                   e1 if up else e2, wing)
+    otm = otm_value(min(F, K), F * g1, e2 if up else e1, e1 if up else e2, wing)
     otm = otm if live else 0.0
     V = D * (max(cp * (F - K), 0.0) + otm)
 

@@ -10,11 +10,13 @@ afterwards.  Priority, highest first (a row gets the first that applies):
    call/put flag included), ``non_finite_input`` (any required input +-inf, the discount
    factor and the extra inputs of a model included), then the range checks
    ``bad_underlying``, ``bad_strike``, ``negative_vol``, ``expired``, ``out_of_range``;
-2. quote problems of a bid/ask pair: ``crossed_quote`` (all three sides), then
-   ``zero_bid`` (the bid and the mid);
-3. the premium's own problems, per side: ``missing_input`` / ``non_finite_input`` of the
-   premium, ``below_intrinsic``, ``above_upper_bound``, ``no_time_value``, and an output
-   that is not a finite double (``out_of_range``).
+   The premium of a side counts among that side's inputs: a null/NaN or +-inf premium
+   (bid, ask or mid) is ``missing_input`` / ``non_finite_input`` on that side, and an
+   implied vol that is not a finite double is ``out_of_range``;
+2. quote problems of a bid/ask pair: ``crossed_quote`` (on each side without an input
+   problem), then ``zero_bid`` (the bid and the mid);
+3. the premium's own problems, per side: ``below_intrinsic``, ``above_upper_bound``,
+   ``no_time_value``.
 
 A rate is turned into a discount factor by ``black.discount_factors``, which carries the
 rate's own problems into the factor: a NaN rate gives NaN (missing_input), an infinite
