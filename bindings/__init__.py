@@ -1,13 +1,34 @@
 """volsweep: option prices, implied volatilities and Greeks over Arrow tables.
 
 Outputs are model values, not investment advice.
+
+The Arrow-facing modules are imported on first use (PEP 562), so that ``import
+volsweep.kernel`` -- the numba kernels and their registry -- works without pyarrow.
 """
 
-from .api import greeks, implied_vol, price, sweep
-from .backfill import backfill
-from volsweep.kernel.greeks import GREEK_NAMES
+import importlib
 
-from .warmup import warmup
-
-__all__ = ["GREEK_NAMES", "backfill", "greeks", "implied_vol", "price", "sweep", "warmup"]
 __version__ = "0.1.0"
+
+# public name -> module that defines it
+_EXPORTS = {
+    "price": "api", "implied_vol": "api", "greeks": "api", "sweep": "api",
+    "prepare": "api", "backfill": "backfill", "warmup": "warmup",
+    "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
+    "OPERATIONS": "kernel.registry",
+}
+
+__all__ = sorted(_EXPORTS)
+
+
+def __getattr__(name):
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module 'volsweep' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f"{__name__}.{module}"), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

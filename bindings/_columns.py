@@ -13,6 +13,7 @@ Logical inputs and the default column names (any of them can be remapped with
 ``expiry_years`` time to expiry in years; or ``expiry`` (timestamp/date) plus ``as_of``
 ``rate``       continuously compounded rate; or ``discount`` (discount factor)
 ``div_yield``  continuous dividend yield / borrow (``bsm``; 0 if absent)
+(the models' underlyings and extra inputs come from kernel/registry.py)
 ``is_call``    bool, or strings call/put/C/P (any case)
 ``vol``        volatility (pricing and Greeks)
 ``premium``    price to invert; or ``bid`` and ``ask``
@@ -30,22 +31,19 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from volsweep.kernel import black as _black
+from volsweep.kernel import registry as _registry
 
 from ._output import new_array
 
-MODELS = ("bsm", "black76")
-UNDERLYING = {"bsm": "spot", "black76": "forward"}
-KNOWN_NAMES = ("spot", "forward", "strike", "expiry_years", "expiry", "as_of", "rate",
-               "discount", "div_yield", "is_call", "vol", "premium", "bid", "ask")
+# every logical input name: the models' underlyings and extra inputs come from the registry
+KNOWN_NAMES = tuple(dict.fromkeys(
+    [m.underlying for m in _registry.MODELS.values()]
+    + ["strike", "expiry_years", "expiry", "as_of", "rate", "discount"]
+    + [x.name for m in _registry.MODELS.values() for x in m.extras]
+    + ["is_call", "vol", "premium", "bid", "ask"]))
 _NS_PER_YEAR = 365.0 * 86400.0 * 1e9  # ACT/365F
 _CALL_WORDS = ["call", "c"]
 _PUT_WORDS = ["put", "p"]
-
-
-def check_model(model) -> str:
-    if model not in MODELS:
-        raise ValueError(f"unknown model {model!r}; expected one of {', '.join(MODELS)}")
-    return model
 
 
 @dataclass
@@ -61,7 +59,7 @@ class ColumnPlan:
     @classmethod
     def build(cls, schema: pa.Schema, model: str, columns: dict | None, *, need_vol: bool,
               need_quote: bool, as_of=None) -> "ColumnPlan":
-        model = check_model(model)
+        entry = _registry.model(model)
         if columns is not None and not isinstance(columns, Mapping):
             raise TypeError("columns= must be a dict of {our input name: your column name}, "
                             f"got {type(columns).__name__}")
@@ -103,8 +101,7 @@ class ColumnPlan:
                 raise ValueError(f"conflicting columns {present(a)!r} and {present(b)!r}: "
                                  f"give one of {a!r} or {b!r}")
 
-        und = UNDERLYING[model]
-        require(und, f"model {model!r}")
+        require(entry.underlying, f"model {model!r}")
         require("strike")
         require("is_call")
         # Time to expiry: 'expiry_years' when present; 'expiry' (+ as_of) when it is the
@@ -128,8 +125,9 @@ class ColumnPlan:
             require("discount")
         else:
             require("rate", "discounting ('rate' or 'discount')")
-        if model == "bsm" and present("div_yield"):
-            require("div_yield")
+        for extra in entry.extras:          # optional: the registry's default when absent
+            if present(extra.name):
+                require(extra.name)
         if need_vol:
             require("vol")
         if need_quote:
@@ -170,9 +168,6 @@ class ColumnPlan:
     def floats(self, batch: pa.RecordBatch, logical: str) -> np.ndarray:
         return _to_float64(batch.column(self.source[logical]))
 
-    def underlying(self, batch):
-        return self.floats(batch, UNDERLYING[self.model])
-
     def expiry_years(self, batch) -> np.ndarray:
         if "expiry_years" in self.source:
             return self.floats(batch, "expiry_years")
@@ -190,10 +185,11 @@ class ColumnPlan:
         r = self.floats(batch, "rate")
         return _black.discount_factors(r, T, new_array(len(T)))
 
-    def div_yield(self, batch) -> np.ndarray:
-        if "div_yield" in self.source:
-            return self.floats(batch, "div_yield")
-        return np.zeros(batch.num_rows)
+    def extra(self, batch, extra) -> np.ndarray:
+        """A model's extra input (a registry ``Input``): its column, or its default."""
+        if extra.name in self.source:
+            return self.floats(batch, extra.name)
+        return np.full(batch.num_rows, extra.default)
 
     def call_put(self, batch) -> np.ndarray:
         return _to_call_put(batch.column(self.source["is_call"]))

@@ -1,9 +1,15 @@
-"""The public operations: Arrow-compatible tables in, Arrow tables out.
+"""The public row operations: Arrow-compatible tables in, Arrow tables out.
 
 Every operation returns the input columns, in the input order, plus its outputs; every row
 gets a ``status`` (``"ok"`` or the reason it has no value).  Multi-chunk tables and streams
 are processed batch by batch, never concatenated.  Schema problems raise ``ValueError`` /
 ``TypeError`` naming the column before any work is done; data problems never raise.
+
+The operations and the models are the registry's (kernel/registry.py): one code path
+serves every model, calling the model's kernels with its inputs in the registry's order.
+``prepare`` does everything that depends only on the input schema and the options once
+(column plan, checks, output schema) and is cached per schema, so a loop of small calls
+pays for it once; the streaming driver calls it once per run.
 """
 
 from __future__ import annotations
@@ -17,12 +23,10 @@ import pyarrow as pa
 
 from volsweep.kernel import black as _black
 from volsweep.kernel import greeks as _greeks
-from volsweep.kernel import implied as _implied
-from volsweep.kernel import status as _status
-from volsweep.kernel import sweep as _sweep
+from volsweep.kernel import registry as _registry
 from volsweep.kernel._jit import BLOCK as _BLOCK
 
-from ._columns import ColumnPlan, check_model
+from ._columns import ColumnPlan
 from ._input import as_batches
 from ._output import (append, check_no_clash, float_column, new_array, output_schema,
                       status_column, validity_buffer)
@@ -82,231 +86,15 @@ def _greek_columns(names, g, ok, n_nonfinite) -> dict:
     return {name: float_column(g[j], ok, validity) for j, name in enumerate(names)}
 
 
-def _run(data, plan_kwargs, outputs, compute) -> pa.Table:
-    """Shared driver: plan the columns once, then ``compute(plan, batch)`` per batch.
 
-    ``outputs`` is the tuple of output names, or a function of the plan giving it.
-    """
-    schema, batches = as_batches(data)
-    plan = ColumnPlan.build(schema, **plan_kwargs)
-    if callable(outputs):
-        outputs = outputs(plan)
-    check_no_clash(schema, outputs)
-    out_schema = output_schema(schema, outputs)
-    out = []
-    for b in batches:
-        with _kernel_launch():
-            cols = compute(plan, b)
-        out.append(append(b, out_schema, cols))
-    return pa.Table.from_batches(out, schema=out_schema)
+_QUOTE_OUTPUTS = ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty", "status_bid",
+                  "status_ask")
+_VEGA = _greeks.GREEK_NAMES.index("vega")
 
 
-def _forward_inputs(plan: ColumnPlan, batch: pa.RecordBatch):
-    T = plan.expiry_years(batch)
-    return (plan.underlying(batch), plan.floats(batch, "strike"), T, plan.discount(batch, T),
-            plan.div_yield(batch) if plan.model == "bsm" else None, plan.call_put(batch))
-
-
-def _input_priority(plan, batch, und, K, T, q, cp, vol, *statuses) -> None:
-    """Restore the documented input-status priority on rows the kernel flagged (in place).
-
-    The kernels see the discount factor e^{-rT}, not the rate: an infinite rate gives D = 0
-    or inf (out_of_range), and an infinite rate or time times a zero gives D = NaN
-    (missing_input).  The README promises missing_input for a null/NaN input and then
-    non_finite_input for a +-inf one (the discount factor excepted: out_of_range).  Only
-    rows that already have a non-ok status can be affected, so only those are examined.
-    """
-    # a bool mask for np.flatnonzero (on int8 it takes a slow generic path: 3.4 ms per 2M
-    # rows against 0.2 ms), built pairwise (logical_or.reduce over a list stacks it first)
-    flagged = statuses[0] != 0
-    for st in statuses[1:]:
-        flagged |= st != 0
-    bad = np.flatnonzero(flagged)
-    if not len(bad):
-        return
-    raw = [und, K, T]
-    if "rate" in plan.source:
-        raw.append(plan.floats(batch, "rate"))
-    else:
-        raw.append(plan.floats(batch, "discount"))
-    if vol is not None:
-        raw.append(vol)
-    if q is not None:
-        raw.append(q)
-    vals = np.stack([a[bad] for a in raw])
-    missing = np.isnan(vals).any(axis=0) | (cp[bad] == 0)
-    if "rate" not in plan.source:
-        vals[3] = 0.0  # an infinite discount factor is out_of_range, as documented
-    nonfinite = np.isinf(vals).any(axis=0) & ~missing
-    for st in statuses:
-        sub = st[bad]
-        sub[missing] = _status.MISSING_INPUT
-        sub[nonfinite] = _status.NON_FINITE_INPUT
-        st[bad] = sub
-
-
-def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
-    """Model prices of European options.
-
-    ``model="bsm"``: Black-Scholes-Merton on ``spot`` with continuous ``div_yield``;
-    ``model="black76"``: Black-76 on ``forward``.  Adds ``price`` (null where the row has no
-    price) and ``status``.  ``columns`` maps our input names to yours, e.g.
-    ``{"strike": "K"}``; ``as_of`` is the valuation time when expiries are timestamps.
-    """
-
-    def compute(plan, batch):
-        und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        vol = plan.floats(batch, "vol")
-        n = batch.num_rows
-        p = new_array(n)
-        st = new_array(n, np.int8)
-        if plan.model == "bsm":
-            _black.bsm_price(und, K, T, D, q, vol, cp, p, st)
-        else:
-            _black.black76_price(und, K, T, D, vol, cp, p, st)
-        _input_priority(plan, batch, und, K, T, q, cp, vol, st)
-        return {"price": float_column(p, st == 0), "status": status_column(st)}
-
-    return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
-                           as_of=as_of), ("price", "status"), compute)
-
-
-_INPUT_PROBLEM = np.int8(_status.OUT_OF_RANGE)  # codes 1..7 are input problems
-
-
-def _iv_kernel(plan, premium, und, K, T, D, q, cp):
-    n = len(premium)
-    iv = new_array(n)
-    st = new_array(n, np.int8)
-    if plan.model == "bsm":
-        _implied.bsm_iv(premium, und, K, T, D, q, cp, iv, st)
-    else:
-        _implied.black76_iv(premium, und, K, T, D, cp, iv, st)
-    return iv, st
-
-
-def _quote_problems(bid, ask, st_bid, st_ask, st_mid, ivs):
-    """Overlay the quote's own problems on the per-side statuses (in place).
-
-    Input problems (codes 1..7) keep priority.  A crossed quote (bid > ask) has no vol on
-    either side nor at the mid; a zero bid has no bid vol and no meaningful mid.
-    """
-    with np.errstate(invalid="ignore"):
-        crossed = bid > ask
-        zero_bid = (bid <= 0.0) & ~crossed
-    for st in (st_bid, st_ask, st_mid):
-        quote_level = (st == 0) | (st > _INPUT_PROBLEM)
-        st[crossed & quote_level] = _status.CROSSED_QUOTE
-    for st in (st_bid, st_mid):
-        quote_level = (st == 0) | (st > _INPUT_PROBLEM)
-        st[zero_bid & quote_level] = _status.ZERO_BID
-    for iv, st in zip(ivs, (st_bid, st_ask, st_mid)):
-        iv[st != 0] = np.nan
-
-
-def _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask):
-    n = len(premium)
-    iv = new_array(n)
-    out = new_array((bin(mask).count("1"), n))
-    st = new_array(n, np.int8)
-    if plan.model == "bsm":
-        n_nonfinite = _sweep.bsm_sweep(premium, und, K, T, D, q, cp, mask, iv, out, st)
-    else:
-        n_nonfinite = _sweep.black76_sweep(premium, und, K, T, D, cp, mask, iv, out, st)
-    return iv, (out, n_nonfinite), st
-
-
-def _iv_columns(plan, batch, und, K, T, D, q, cp, names=()):
-    """Implied-vol outputs of one batch, with the Greeks in ``names`` at the (mid) vol.
-
-    Returns (columns, Greeks array in raw units or None, mid status, number of ok rows
-    with a non-finite Greek).
-    """
-    mask = _greeks.greek_mask(names, plan.model) if names else 0
-
-    def solve(premium):
-        if not names:
-            iv, st = _iv_kernel(plan, premium, und, K, T, D, q, cp)
-            return iv, (None, 0), st
-        return _sweep_kernel(plan, premium, und, K, T, D, q, cp, mask)
-
-    if plan.quote == "premium":
-        iv, (g, n_nonfinite), st = solve(plan.floats(batch, "premium"))
-        _input_priority(plan, batch, und, K, T, q, cp, None, st)
-        return {"iv": float_column(iv, st == 0)}, g, st, n_nonfinite
-    bid, ask = plan.floats(batch, "bid"), plan.floats(batch, "ask")
-    mid, half_spread = _mid_and_half_spread(bid, ask)
-    iv_b, st_b = _iv_kernel(plan, bid, und, K, T, D, q, cp)
-    iv_a, st_a = _iv_kernel(plan, ask, und, K, T, D, q, cp)
-    iv_m, (g, n_nonfinite), st_m = solve(mid)
-    _input_priority(plan, batch, und, K, T, q, cp, None, st_b, st_a, st_m)
-    _quote_problems(bid, ask, st_b, st_a, st_m, (iv_b, iv_a, iv_m))
-    if "vega" in names:
-        vega = g[names.index("vega")]
-    else:
-        (vega,), _, _ = _greek_values(plan, ("vega",), und, K, T, D, q, iv_m, cp)
-    with np.errstate(all="ignore"):
-        unc = half_spread / vega
-    ok = st_m == 0
-    cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
-            "iv": float_column(iv_m, ok), "iv_spread_uncertainty": _ok_column(unc, ok),
-            "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
-    return cols, g, st_m, n_nonfinite
-
-
-def _mid_and_half_spread(bid, ask):
-    """0.5 (bid + ask) and 0.5 (ask - bid), without overflow for quotes near 1.8e308."""
-    with np.errstate(all="ignore"):
-        mid = 0.5 * (bid + ask)
-        half_spread = 0.5 * (ask - bid)
-        over = np.isinf(mid) & np.isfinite(bid) & np.isfinite(ask)
-        if over.any():
-            mid[over] = 0.5 * bid[over] + 0.5 * ask[over]
-        over = np.isinf(half_spread) & np.isfinite(bid) & np.isfinite(ask)
-        if over.any():
-            half_spread[over] = 0.5 * ask[over] - 0.5 * bid[over]
-    return mid, half_spread
-
-
-def _iv_outputs(plan):
-    if plan.quote == "premium":
-        return ("iv",)
-    return ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty", "status_bid", "status_ask")
-
-
-def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
-    """Implied volatilities from market prices.
-
-    From a ``premium`` column: adds ``iv`` and ``status``.  From ``bid`` and ``ask``: adds
-    ``iv_bid``, ``iv_ask`` and ``iv`` (from the mid), each with its own status
-    (``status_bid``, ``status_ask``, and ``status`` for the mid), and
-    ``iv_spread_uncertainty``, the half-spread divided by the vega at the mid vol.
-    """
-
-    def compute(plan, batch):
-        und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        cols, _, st, _ = _iv_columns(plan, batch, und, K, T, D, q, cp)
-        cols["status"] = status_column(st)
-        return cols
-
-    return _run(data, dict(model=model, columns=columns, need_vol=False, need_quote=True,
-                           as_of=as_of), lambda plan: _iv_outputs(plan) + ("status",), compute)
-
-
-def _greek_values(plan, which, und, K, T, D, q, vol, cp, units="raw"):
-    """Greeks named in ``which`` (already validated) -> (out[n_req, n], status, number of
-    ok rows with a non-finite Greek)."""
-    mask = _greeks.greek_mask(which, plan.model)
-    n = len(K)
-    out = new_array((bin(mask).count("1"), n))
-    st = new_array(n, np.int8)
-    if plan.model == "bsm":
-        n_nonfinite = _greeks.bsm_greeks(und, K, T, D, q, vol, cp, mask, out, st)
-    else:
-        n_nonfinite = _greeks.black76_greeks(und, K, T, D, vol, cp, mask, out, st)
-    if units == "desk":
-        out *= _greeks.desk_factors(mask)[:, None]
-    return out, st, n_nonfinite
+def _check_units(units):
+    if units not in ("raw", "desk"):
+        raise ValueError(f"unknown units {units!r}; expected 'raw' or 'desk'")
 
 
 def _greek_list(which, model) -> tuple:
@@ -320,9 +108,191 @@ def _greek_list(which, model) -> tuple:
     return _greeks.greek_names(_greeks.greek_mask(which, model))
 
 
-def _check_units(units):
-    if units not in ("raw", "desk"):
-        raise ValueError(f"unknown units {units!r}; expected 'raw' or 'desk'")
+class Prepared:
+    """One operation prepared for one input schema: call it on record batches of that
+    schema.  ``out_schema``: the input fields followed by ``outputs``; ``used``: the input
+    columns the operation reads."""
+
+    def __init__(self, operation, schema, model, which, units, columns, as_of):
+        op = _registry.OPERATIONS.get(operation)
+        if op is None:
+            raise ValueError(f"unknown operation {operation!r}; expected one of "
+                             f"{', '.join(_registry.OPERATIONS)}")
+        self.operation = operation
+        self.model = _registry.model(model)
+        names = ()
+        if operation in ("greeks", "sweep"):
+            _check_units(units)
+            names = _greek_list(which, model)
+        self.greeks = names
+        self.units = units
+        self.plan = ColumnPlan.build(schema, model=model, columns=columns,
+                                     need_vol=op.needs == "vol",
+                                     need_quote=op.needs == "quote", as_of=as_of)
+        quotes = self.plan.quote == "bid_ask"
+        outputs = ()
+        if operation == "price":
+            outputs = ("price",)
+        elif op.needs == "quote":
+            outputs = _QUOTE_OUTPUTS if quotes else ("iv",)
+        self.outputs = outputs + names + ("status",)
+        check_no_clash(schema, self.outputs)
+        self.out_schema = output_schema(schema, self.outputs)
+        self.used = list(dict.fromkeys(self.plan.source.values()))
+        self.mask = _greeks.greek_mask(names, model) if names else 0
+        if quotes:                       # the bid/ask kernel also needs vega at the mid
+            self.mask |= 1 << _VEGA
+        kind = "bid_ask" if quotes else operation
+        if kind == "sweep" and not names:      # no Greeks: the implied-vol kernel alone
+            kind = "implied_vol"
+        self._compute = getattr(self, "_" + kind)
+
+    def __call__(self, batch: pa.RecordBatch) -> pa.RecordBatch:
+        with _kernel_launch():
+            cols = self._compute(batch)
+        return append(batch, self.out_schema, cols)
+
+    # ------------------------------------------------------------ per operation
+    def _inputs(self, batch):
+        """The model's kernel inputs (U, K, T, D, *extras) and the call/put signs."""
+        plan = self.plan
+        T = plan.expiry_years(batch)
+        inputs = (plan.floats(batch, self.model.underlying), plan.floats(batch, "strike"), T,
+                  plan.discount(batch, T)) + tuple(plan.extra(batch, x)
+                                                   for x in self.model.extras)
+        return inputs, plan.call_put(batch)
+
+    def _greek_out(self, g, n_nonfinite, ok, rows=None) -> dict:
+        if rows is not None:
+            g = g[rows]
+        if self.units == "desk" and self.greeks:
+            g *= _greeks.desk_factors(_greeks.greek_mask(self.greeks, self.model.name))[:, None]
+        return _greek_columns(self.greeks, g, ok, n_nonfinite)
+
+    def _price(self, batch):
+        inputs, cp = self._inputs(batch)
+        n = batch.num_rows
+        p, st = new_array(n), new_array(n, np.int8)
+        self.model.kernels["price"](*inputs, self.plan.floats(batch, "vol"), cp, p, st)
+        return {"price": float_column(p, st == 0), "status": status_column(st)}
+
+    def _implied_vol(self, batch):
+        inputs, cp = self._inputs(batch)
+        n = batch.num_rows
+        iv, st = new_array(n), new_array(n, np.int8)
+        self.model.kernels["implied_vol"](self.plan.floats(batch, "premium"), *inputs, cp,
+                                          iv, st)
+        return {"iv": float_column(iv, st == 0), "status": status_column(st)}
+
+    def _greeks(self, batch):
+        inputs, cp = self._inputs(batch)
+        n = batch.num_rows
+        out, st = new_array((len(self.greeks), n)), new_array(n, np.int8)
+        n_nonfinite = self.model.kernels["greeks"](*inputs, self.plan.floats(batch, "vol"),
+                                                   cp, self.mask, out, st)
+        cols = self._greek_out(out, n_nonfinite, st == 0)
+        cols["status"] = status_column(st)
+        return cols
+
+    def _sweep(self, batch):
+        inputs, cp = self._inputs(batch)
+        n = batch.num_rows
+        iv, st = new_array(n), new_array(n, np.int8)
+        out = new_array((len(self.greeks), n))
+        n_nonfinite = self.model.kernels["sweep"](self.plan.floats(batch, "premium"), *inputs,
+                                                  cp, self.mask, iv, out, st)
+        ok = st == 0
+        cols = {"iv": float_column(iv, ok)}
+        cols.update(self._greek_out(out, n_nonfinite, ok))
+        cols["status"] = status_column(st)
+        return cols
+
+    def _bid_ask(self, batch):
+        inputs, cp = self._inputs(batch)
+        n = batch.num_rows
+        iv_b, iv_a, iv, unc = (new_array(n) for _ in range(4))
+        st_b, st_a, st = (new_array(n, np.int8) for _ in range(3))
+        out = new_array((bin(self.mask).count("1"), n))
+        n_nonfinite = self.model.kernels["bid_ask"](
+            self.plan.floats(batch, "bid"), self.plan.floats(batch, "ask"), *inputs, cp,
+            self.mask, iv_b, iv_a, iv, unc, out, st_b, st_a, st)
+        ok = st == 0
+        cols = {"iv_bid": float_column(iv_b, st_b == 0), "iv_ask": float_column(iv_a, st_a == 0),
+                "iv": float_column(iv, ok), "iv_spread_uncertainty": _ok_column(unc, ok),
+                "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
+        if self.greeks:
+            rows = [j for j, name in enumerate(_greeks.greek_names(self.mask))
+                    if name in self.greeks]
+            cols.update(self._greek_out(out, n_nonfinite, ok,
+                                        None if len(rows) == len(out) else rows))
+        cols["status"] = status_column(st)
+        return cols
+
+
+_PREPARED: dict = {}
+_PREPARED_MAX = 64
+
+
+def _freeze(value):
+    if isinstance(value, dict):
+        return tuple(sorted((k, _freeze(v)) for k, v in value.items()))
+    if isinstance(value, (list, tuple)):
+        return tuple(_freeze(v) for v in value)
+    return value
+
+
+def prepare(operation: str, schema: pa.Schema, *, model: str = "bsm", which=None,
+            units: str = "raw", columns: dict | None = None, as_of=None) -> Prepared:
+    """The operation ``operation`` ("price", "implied_vol", "greeks" or "sweep") prepared
+    for input batches of ``schema`` with these options: the column plan, every schema check
+    and the output schema, done once.  Cached per (schema, options): a service calling
+    ``price`` on many small batches of one schema builds it once.  Raises as the operation
+    would on a schema problem."""
+    try:
+        key = (operation, schema, _freeze(schema.metadata), model, _freeze(which), units,
+               _freeze(columns), as_of)
+        hash(key)
+    except TypeError:            # an unhashable option (e.g. an exotic as_of): no caching
+        key = None
+    if key is not None:
+        hit = _PREPARED.get(key)
+        if hit is not None:
+            return hit
+    prep = Prepared(operation, schema, model, which, units, columns, as_of)
+    if key is not None:
+        if len(_PREPARED) >= _PREPARED_MAX:
+            _PREPARED.pop(next(iter(_PREPARED)))
+        _PREPARED[key] = prep
+    return prep
+
+
+def _run(operation, data, **options) -> pa.Table:
+    schema, batches = as_batches(data)
+    prep = prepare(operation, schema, **options)
+    return pa.Table.from_batches([prep(b) for b in batches], schema=prep.out_schema)
+
+
+def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
+    """Model prices of European options at the volatility in the ``vol`` column.
+
+    ``model``: a name of the registry (``volsweep.MODELS``; ``"bsm"`` on ``spot`` with a
+    continuous ``div_yield``, ``"black76"`` on ``forward``).  Adds ``price`` (null where the
+    row has no price) and ``status``.  ``columns`` maps our input names to yours, e.g.
+    ``{"strike": "K"}``; ``as_of`` is the valuation time when expiries are timestamps.
+    """
+    return _run("price", data, model=model, columns=columns, as_of=as_of)
+
+
+def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
+    """Implied volatilities from market prices.
+
+    From a ``premium`` column: adds ``iv`` and ``status``.  From ``bid`` and ``ask``: adds
+    ``iv_bid``, ``iv_ask`` and ``iv`` (from the mid), each with its own status
+    (``status_bid``, ``status_ask``, and ``status`` for the mid), and
+    ``iv_spread_uncertainty``, the half-spread divided by the vega at the mid vol, all from
+    one kernel pass.
+    """
+    return _run("implied_vol", data, model=model, columns=columns, as_of=as_of)
 
 
 def greeks(data, model: str = "bsm", which=None, units: str = "raw",
@@ -332,22 +302,11 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
     ``which``: a Greek name or a list of them (None: all the model has; see
     ``GREEK_NAMES``).  ``units="raw"``: per 1.00 of vol, rate and yield, theta per year;
     ``units="desk"``: per vol point, per 1%, per calendar day.  Adds one column per Greek and
-    ``status``.  Derivatives are against the spot for ``bsm`` and the forward for ``black76``.
+    ``status``.  Derivatives are against the model's underlying (spot for ``bsm``, the
+    forward for ``black76``).
     """
-    _check_units(units)
-    names = _greek_list(which, check_model(model))
-
-    def compute(plan, batch):
-        und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        vol = plan.floats(batch, "vol")
-        out, st, n_nonfinite = _greek_values(plan, names, und, K, T, D, q, vol, cp, units)
-        _input_priority(plan, batch, und, K, T, q, cp, vol, st)
-        cols = _greek_columns(names, out, st == 0, n_nonfinite)
-        cols["status"] = status_column(st)
-        return cols
-
-    return _run(data, dict(model=model, columns=columns, need_vol=True, need_quote=False,
-                           as_of=as_of), names + ("status",), compute)
+    return _run("greeks", data, model=model, which=which, units=units, columns=columns,
+                as_of=as_of)
 
 
 def sweep(data, model: str = "bsm", which=None, units: str = "raw",
@@ -358,18 +317,5 @@ def sweep(data, model: str = "bsm", which=None, units: str = "raw",
     implied-vol outputs of ``implied_vol`` followed by the Greeks of ``greeks``.  Rows
     without an implied vol get null Greeks and the implied-vol status.
     """
-    _check_units(units)
-    names = _greek_list(which, check_model(model))
-
-    def compute(plan, batch):
-        und, K, T, D, q, cp = _forward_inputs(plan, batch)
-        cols, g, st, n_nonfinite = _iv_columns(plan, batch, und, K, T, D, q, cp, names)
-        if units == "desk":
-            g *= _greeks.desk_factors(_greeks.greek_mask(names, plan.model))[:, None]
-        cols.update(_greek_columns(names, g, st == 0, n_nonfinite))
-        cols["status"] = status_column(st)
-        return cols
-
-    return _run(data, dict(model=model, columns=columns, need_vol=False, need_quote=True,
-                           as_of=as_of), lambda plan: _iv_outputs(plan) + names + ("status",),
-                compute)
+    return _run("sweep", data, model=model, which=which, units=units, columns=columns,
+                as_of=as_of)

@@ -1,10 +1,10 @@
 """Black-76 and Black-Scholes-Merton prices, calls and puts, in normalised form.
 
 Every model input is reduced to forward F, strike K, total volatility s = sigma*sqrt(T),
-discount factor D and the sign theta (+1 call, -1 put).  With x = ln(F/K), h = x/s and
+discount factor D and the call/put sign cp (+1 call, -1 put).  With x = ln(F/K), h = x/s and
 t = s/2 the undiscounted Black price is
 
-    theta * (F Phi(theta (h + t)) - K Phi(theta (h - t))).
+    cp * (F Phi(cp (h + t)) - K Phi(cp (h - t))).
 
 The textbook difference of two normal CDFs loses everything in the wings: both terms
 underflow, and the rounding of d1 = h + t and d2 = h - t (absolute error ~eps*|h|)
@@ -14,7 +14,7 @@ What we do instead:
 
 1. Put-call symmetry reduces every option to its intrinsic value plus the time value of
    the out-of-the-money option of the pair, with x_o = -|x| <= 0, A = min(F, K),
-   B = max(F, K):  price = D * (max(theta (F - K), 0) + otm).  Both parts are positive.
+   B = max(F, K):  price = D * (max(cp (F - K), 0) + otm).  Both parts are positive.
 2. With Phi(z) = erfcx(-z/sqrt2) exp(-z^2/2) / 2, both terms of the OTM value share the
    factor E = exp(-d1^2/2) / 2 = exp(-a^2) / 2 (because B phi(d2) = A phi(d1) for the OTM
    option: x_o/2 = h t), which is computed once, and the rest is a difference of slowly
@@ -41,11 +41,7 @@ from numba import prange
 from . import status as S
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
-from .special import _exp_sq, erfcx_pos, exp, log
-
-_SQRT1_2 = 0.7071067811865476
-NAN = np.nan
-INF = np.inf
+from .special import INF, NAN, SQRT1_2, _exp_sq, erfcx_pos, exp, log
 
 
 @scalar
@@ -58,26 +54,37 @@ def otm_ratio(x, s):
     """
     h = x / s
     t = 0.5 * s
-    a = -(h + t) * _SQRT1_2
-    b = (t - h) * _SQRT1_2
+    a = -(h + t) * SQRT1_2
+    b = (t - h) * SQRT1_2
     ya = abs(a)
     e = 0.5 * _exp_sq(40.0 if ya > 40.0 else ya, -1.0)   # exp(-1600) = 0
-    wing = a >= 0.0
-    ea = erfcx_pos(ya)
-    eb = erfcx_pos(b)
+    return otm_ratio_of(e, erfcx_pos(ya), erfcx_pos(b), a >= 0.0)
+
+
+@scalar
+def otm_ratio_of(e, ea, eb, wing):
+    """The out-of-the-money time value per min(F, K) from its parts -- the one place this
+    combination is written (the price here, the price inside the Greeks; the implied-vol
+    solver evaluates its logarithm, ln e + ln(ea -+ eb), in kernel/implied.py).
+
+    e = exp(-d1^2/2) / 2 of the OTM option, ea = erfcx(|d1|/sqrt2), eb = erfcx(|d2|/sqrt2);
+    ``wing`` (d1 <= 0): e (ea - eb); core: 1 - e (ea + eb) (A Phi(d1) written as
+    A - A Phi(-d1) through the same e).  Both forms are free of cancellation beyond the
+    problem's own.
+    """
     return e * (ea - eb) if wing else 1.0 - e * (ea + eb)
 
 
 @scalar
-def black_price(F, K, s, D, theta):
-    """Discounted Black-76 price for valid inputs (F, K > 0, s >= 0, theta = +-1)."""
+def black_price(F, K, s, D, cp):
+    """Discounted Black-76 price for valid inputs (F, K > 0, s >= 0, cp = +-1)."""
     x = log(F / K)
     xo = -abs(x)
     A = min(F, K)
     ss = s if s > 0.0 else 1.0
     otm = A * otm_ratio(xo, ss)
     otm = otm if s > 0.0 else 0.0
-    intrinsic = max(theta * (F - K), 0.0)
+    intrinsic = max(cp * (F - K), 0.0)
     return D * (intrinsic + otm)
 
 
@@ -92,44 +99,40 @@ def _is_inf(v):
 
 
 @scalar
-def input_status(F, K, T, D, vol, cp):
-    """Status of one row's model inputs (forward space), in priority order."""
-    missing = (_is_nan(F) or _is_nan(K) or _is_nan(T) or _is_nan(D) or _is_nan(vol)
-               or cp == 0)
-    nonfinite = _is_inf(F) or _is_inf(K) or _is_inf(T) or _is_inf(vol)
-    st = S.OUT_OF_RANGE if not (D > 0.0 and D < INF) else S.OK
+def input_status(U, K, T, D, vol, cp, q):
+    """Status of one row's model inputs, in the priority order of kernel/status.py.
+
+    U: the underlying (forward or spot); q: the model's extra input (the dividend yield;
+    0.0 for a model without one, a constant that folds away); vol: 0.0 where the row has
+    no vol input (implied vol).  cp = 0 (a missing call/put flag) is missing_input.  A
+    discount factor from a rate carries the rate's problems (``discount_factors``).
+    """
+    missing = (_is_nan(U) or _is_nan(K) or _is_nan(T) or _is_nan(D) or _is_nan(vol)
+               or _is_nan(q) or cp == 0)
+    nonfinite = (_is_inf(U) or _is_inf(K) or _is_inf(T) or _is_inf(D) or _is_inf(vol)
+                 or _is_inf(q))
+    st = S.OUT_OF_RANGE if not (D > 0.0) else S.OK
     st = S.EXPIRED if not (T > 0.0) else st
     st = S.NEGATIVE_VOL if vol < 0.0 else st
     st = S.BAD_STRIKE if not (K > 0.0) else st
-    st = S.BAD_UNDERLYING if not (F > 0.0) else st
+    st = S.BAD_UNDERLYING if not (U > 0.0) else st
     st = S.NON_FINITE_INPUT if nonfinite else st
     st = S.MISSING_INPUT if missing else st
     return st
 
 
 @scalar
-def bsm_forward(spot, T, D, q):
-    """Forward of a spot price with continuous yield q: S e^{-qT} / D (= S e^{(r-q)T})."""
-    return spot * exp(-q * T) / D
-
-
-@scalar
-def spot_status(spot, T, D, q, F):
-    """Extra checks of the BSM adapter: the dividend yield and the derived forward."""
-    st = S.MISSING_INPUT if _is_nan(q) else S.OK
-    st = S.NON_FINITE_INPUT if _is_inf(q) else st
-    bad_fwd = not (F > 0.0 and F < INF)
-    return S.OUT_OF_RANGE if (st == S.OK and bad_fwd) else st
-
-
-@scalar
 def bsm_inputs(spot, K, T, D, q, vol, cp):
-    """One BSM row: (status, forward S e^{-qT}/D, e^{-qT}); the status in priority order."""
+    """One BSM row: (status, forward S e^{-qT} / D, e^{-qT}).
+
+    The status is ``input_status`` of the inputs, then out_of_range where the derived
+    forward is not a positive finite double.
+    """
     dq = exp(-q * T)
-    f = spot * dq / D                    # = bsm_forward(spot, T, D, q), bit for bit
-    st = input_status(spot, K, T, D, vol, cp)
-    st2 = spot_status(spot, T, D, q, f)
-    return (st2 if (st == S.OK and st2 != S.OK) else st), f, dq
+    f = spot * dq / D
+    st = input_status(spot, K, T, D, vol, cp, q)
+    bad_fwd = not (f > 0.0 and f < INF)
+    return (S.OUT_OF_RANGE if (st == S.OK and bad_fwd) else st), f, dq
 
 
 @rows
@@ -139,7 +142,7 @@ def _black76_price_rows(a, e, F, K, T, D, vol, cp, price, status):
         k = K[i]
         tt = T[i]
         v = vol[i]
-        st = input_status(f, k, tt, D[i], v, cp[i])
+        st = input_status(f, k, tt, D[i], v, cp[i], 0.0)
         s = v * math.sqrt(tt if tt > 0.0 else 0.0)
         p = black_price(f if f > 0.0 else 1.0, k if k > 0.0 else 1.0, s, D[i], float(cp[i]))
         st = S.OUT_OF_RANGE if (st == S.OK and not (abs(p) < INF)) else st  # overflow
@@ -202,10 +205,21 @@ def bsm_price(spot, K, T, D, q, vol, cp, price, status):
     _args.run(_bsm_price_rows, _bsm_price_par, n, spot, K, T, D, q, vol, cp, price, status)
 
 
+@scalar
+def discount_factor(r, T):
+    """e^{-rT}, carrying the inputs' problems into the factor (kernel/status.py): NaN if r
+    or T is NaN (missing_input), +inf if either is infinite (non_finite_input), 0 where
+    e^{-rT} itself is not a positive finite double (out_of_range)."""
+    d = exp(-r * T)
+    d = d if d < INF else 0.0
+    d = INF if (_is_inf(r) or _is_inf(T)) else d
+    return NAN if (_is_nan(r) or _is_nan(T)) else d
+
+
 @rows
 def _discount_rows(a, e, rate, T, out):
     for i in range(np.uint64(a), np.uint64(e)):
-        out[i] = exp(-rate[i] * T[i])
+        out[i] = discount_factor(rate[i], T[i])
 
 
 @loop
@@ -218,8 +232,9 @@ def _discount_par(rate, T, out):
 def discount_factors(rate, T, out):
     """Discount factors exp(-rate T) of continuously compounded rates into ``out``.
 
-    The kernel's own exp (<= 1 ulp, vectorised, both threads): a table-level call spends
-    about a quarter of its overhead on this conversion with numpy.  NaN in, NaN out.
+    The kernel's own exp (<= 1 ulp, vectorised, both threads), with the rate's problems
+    carried into the factor as ``discount_factor`` says, so that the row loops decide the
+    status alone.
     """
     rate, T = _args.floats(rate, T)
     n = T.shape[0]

@@ -15,10 +15,10 @@ Models and underlyings
 Both are one formula with A = D F (the discounted forward, = S e^{-qT} in BSM),
 Dq = A / U for the underlying U (F or S; Dq = D for Black-76, e^{-qT} for BSM), the
 cost of carry b = r - q (0 for Black-76) and q_e = r - b (r for Black-76, q for BSM).
-With w = +1 call / -1 put, s = sigma sqrt(T), d1,2 = ln(F/K)/s +- s/2, n1 = phi(d1),
-N1 = Phi(w d1), N2 = Phi(w d2), the rate r = -ln(D)/T (constant while T moves):
+With cp = +1 call / -1 put, s = sigma sqrt(T), d1,2 = ln(F/K)/s +- s/2, n1 = phi(d1),
+N1 = Phi(cp d1), N2 = Phi(cp d2), the rate r = -ln(D)/T (constant while T moves):
 
-    delta   dV/dU             w Dq N1
+    delta   dV/dU             cp Dq N1
     gamma   d2V/dU2           Dq n1 / (U s)
     speed   d3V/dU3           -gamma (1 + d1/s) / U
     vega    dV/dsigma         A n1 sqrt(T)
@@ -26,13 +26,13 @@ N1 = Phi(w d1), N2 = Phi(w d2), the rate r = -ln(D)/T (constant while T moves):
     volga   d2V/dsigma2       vega d1 d2 / sigma
     ultima  d3V/dsigma3       -vega (d1 d2 (1 - d1 d2) + d1^2 + d2^2) / sigma^2
     zomma   d3V/dU2 dsigma    gamma (d1 d2 - 1) / sigma
-    theta   -dV/dT            r V - w b A N1 - A n1 sigma / (2 sqrt(T))
+    theta   -dV/dT            r V - cp b A N1 - A n1 sigma / (2 sqrt(T))
     charm   -d2V/dU dT        q_e delta + Dq n1 (d2 / (2T) - b / s)
     veta    -d2V/dsigma dT    vega (q_e + b d1/s - (1 + d1 d2) / (2T))
     color   -d3V/dU2 dT       gamma (q_e + b d1/s + (1 - d1 d2) / (2T))
-    rho     dV/dr             BSM: w T K D N2;  Black-76: -T V
-    div_rho dV/dq             BSM: -w T A N1;   Black-76: not defined (NaN)
-    dual_delta dV/dK          -w D N2
+    rho     dV/dr             BSM: cp T K D N2;  Black-76: -T V
+    div_rho dV/dq             BSM: -cp T A N1;   Black-76: not defined (NaN)
+    dual_delta dV/dK          -cp D N2
     dual_gamma d2V/dK2        D phi(d2) / (K s)
 
 Signs: theta, charm, veta and color are per year of calendar time *passing*, i.e. minus
@@ -47,9 +47,9 @@ Everything comes from one set of intermediates per row: one log (ln F/K), one ex
 0.5 erfc(-z/sqrt2) would round z/sqrt2), a log of D when a rate term is wanted, and
 reciprocals shared by the Greeks (divisions are the slowest vector operation).  Phi(+|z|)
 is 1 - Phi(-|z|).  The price V (for theta and the Black-76 rho) is rebuilt from the same
-tails in the out-of-the-money form of kernel/black.py: intrinsic plus the OTM time value
-F sqrt(pi/2) phi(d1) |erfcx(u1) - erfcx(u2)| in the wing or min(F, K) - (F Phi(-|d1|) +
-K Phi(-|d2|)) in the core, so it carries no cancellation beyond the problem's own.  The
+tails in the out-of-the-money form of kernel/black.py (``otm_ratio_of``, the one place it
+is written): intrinsic plus min(F, K) times the OTM ratio, so it carries no cancellation
+beyond the problem's own.  The
 BSM theta keeps r V and the carry term apart (not q A N1 - r K D N2, whose two terms
 cancel for out-of-the-money options when q ~ r).
 
@@ -57,7 +57,7 @@ Limits (all with status ok, no NaN):
 * vol = 0 (and s = vol sqrt(T) below 1e-100, where phi(d1) underflows for every F != K):
   away from the strike the option is its discounted intrinsic value; the Greeks are the
   derivatives of that (N1, N2 in {0, 1}; gamma, vega and every term carrying phi are 0).
-  At F == K exactly the Greeks are the limits as vol -> 0+: delta = w Dq / 2,
+  At F == K exactly the Greeks are the limits as vol -> 0+: delta = cp Dq / 2,
   vega = A sqrt(T) / sqrt(2 pi), vanna = vega / (2 U), volga = 0, ultima = -vega T / 4,
   and gamma, dual_gamma, speed (-), zomma (-), color are infinite, as is charm when b != 0.
 * T -> 0 (T > 0) behaves as vol -> 0: only s = vol sqrt(T) matters (T <= 0 is status
@@ -97,17 +97,12 @@ from . import status as S
 from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar, specialise
-from .black import bsm_inputs, input_status
-from .special import erfcx_pos, exp, log
+from .black import bsm_inputs, input_status, otm_ratio_of
+from .special import INF, INV_SQRT2PI, NAN, SQRT1_2, SQRT_PI_2, erfcx_pos, exp, log
 
-_SQRT1_2 = 0.7071067811865476
-_INV_SQRT_2PI = 0.3989422804014327
-_SQRT_PI_2 = 1.2533141373155003   # sqrt(pi/2): Phi(-|z|) = sqrt(pi/2) erfcx(|z|/sqrt2) phi(z)
+# Phi(-|z|) = sqrt(pi/2) erfcx(|z|/sqrt2) phi(z)
 _S_TINY = 1e-100                  # below: phi(d1) == 0 for every F != K (|ln F/K| >= 1.1e-16)
 _S_HUGE = 1e100                   # above: phi(d1) == 0 for every F, K
-NAN = np.nan
-INF = np.inf
-
 GREEK_NAMES = ("delta", "gamma", "vega", "theta", "rho", "div_rho", "vanna", "volga",
                "charm", "veta", "speed", "zomma", "color", "ultima", "dual_delta",
                "dual_gamma")
@@ -130,20 +125,22 @@ DESK_SCALE = {name: 1.0 / (100.0 ** (o[0] + o[1]) * 365.0 ** o[2])
 
 
 def greek_mask(which=None, model="bsm"):
-    """Bitmask of the Greeks named in ``which`` (None: all the model has)."""
-    if model not in ("bsm", "black76"):
-        raise ValueError(f"unknown model {model!r} (expected 'bsm' or 'black76')")
+    """Bitmask of the Greeks named in ``which`` (None: all the model defines; the models
+    and their Greeks are in kernel/registry.py)."""
+    from .registry import model as _model   # the registry imports this module
+
+    defined = _model(model).greeks
     if which is None:
-        return ALL_GREEKS if model == "bsm" else ALL_GREEKS & ~_BIT["div_rho"]
+        return sum(_BIT[name] for name in defined)
     if isinstance(which, str):
         which = (which,)
     mask = 0
     for name in which:
         if name not in _BIT:
             raise ValueError(f"unknown Greek {name!r}; known: {', '.join(GREEK_NAMES)}")
-        if model == "black76" and name == "div_rho":
-            raise ValueError("div_rho (dV/dq) is not defined for Black-76: it has no "
-                             "dividend yield")
+        if name not in defined:
+            raise ValueError(f"{name} is not defined for model {model!r} (its Greeks: "
+                             f"{', '.join(defined)})")
         mask |= _BIT[name]
     return mask
 
@@ -161,7 +158,7 @@ def desk_factors(mask):
 # ------------------------------------------------------------------ scalar tier
 
 @scalar
-def _shared(F, K, T, D, vol, w):
+def _shared(F, K, T, D, vol, cp):
     # what depends on d1 and d2: the special functions and the price (see _from_shared)
     sqT = math.sqrt(T)
     s = min(vol * sqT, _S_HUGE)
@@ -177,24 +174,27 @@ def _shared(F, K, T, D, vol, w):
     t = 0.5 * s
     d1 = h + t
     d2 = h - t
-    n1 = _INV_SQRT_2PI * exp(-0.5 * (d1 * d1))
+    n1 = INV_SQRT2PI * exp(-0.5 * (d1 * d1))
     n1 = n1 if live else 0.0
     n2 = n1 * m                          # phi(d2) = phi(d1) F / K
-    g1 = _SQRT_PI_2 * n1
-    e1 = erfcx_pos(abs(d1) * _SQRT1_2)
-    e2 = erfcx_pos(abs(d2) * _SQRT1_2)
+    g1 = SQRT_PI_2 * n1
+    e1 = erfcx_pos(abs(d1) * SQRT1_2)
+    e2 = erfcx_pos(abs(d2) * SQRT1_2)
     c1 = g1 * e1                         # Phi(-|d1|)
     c2 = g1 * m * e2                     # Phi(-|d2|)
     k1 = d1 if pos else x                # the sign of d1 (of ln F/K when s -> 0)
     k2 = d2 if pos else x
-    N1 = c1 if w * k1 <= 0.0 else 1.0 - c1
-    N2 = c2 if w * k2 <= 0.0 else 1.0 - c2
+    N1 = c1 if cp * k1 <= 0.0 else 1.0 - c1
+    N2 = c2 if cp * k2 <= 0.0 else 1.0 - c2
 
-    Fg1 = F * g1
-    core = (d1 > 0.0) & (d2 < 0.0)
-    otm = (min(F, K) - Fg1 * (e1 + e2)) if core else Fg1 * abs(e1 - e2)
+    # the out-of-the-money option of the pair (black.otm_ratio_of): for F > K the put, whose
+    # d1, d2 are -d2, -d1 and whose e^{-d1^2/2}/2 is g1 F/K
+    up = x > 0.0
+    wing = (d2 >= 0.0) if up else (d1 <= 0.0)
+    otm = min(F, K) * otm_ratio_of(g1 * m if up else g1, e2 if up else e1,
+                                   e1 if up else e2, wing)
     otm = otm if live else 0.0
-    V = D * (max(w * (F - K), 0.0) + otm)
+    V = D * (max(cp * (F - K), 0.0) + otm)
 
     inv_s = inv_s0 if live else 0.0      # +inf at the strike with s == 0
     d1s = hs + 0.5                       # d1 / s
@@ -203,7 +203,7 @@ def _shared(F, K, T, D, vol, w):
 
 
 @scalar
-def _from_shared(K, T, D, Dq, U, q, vol, w, spot, sh):
+def _from_shared(K, T, D, Dq, U, q, vol, cp, spot, sh):
     # the Greeks from the intermediates, the rate and the carry
     sqT, iK, inv_s, n1, n2, N1, N2, V, d1, d2, d1s, d2s = sh
     iT = 1.0 / T
@@ -215,12 +215,12 @@ def _from_shared(K, T, D, Dq, U, q, vol, w, spot, sh):
     d12 = d1 * d2
     A = U * Dq
     i2T = 0.5 * iT
-    delta = w * Dq * N1
+    delta = cp * Dq * N1
     gamma = Dq * n1 * inv_s * iU
     vega = A * n1 * sqT
-    theta = r * V - w * b * A * N1 - A * n1 * vol * (sqT * i2T)
-    rho = w * T * (K * D) * N2 if spot else -T * V
-    div_rho = -w * T * A * N1 if spot else NAN
+    theta = r * V - cp * b * A * N1 - A * n1 * vol * (sqT * i2T)
+    rho = cp * T * (K * D) * N2 if spot else -T * V
+    div_rho = -cp * T * A * N1 if spot else NAN
     vanna = -Dq * n1 * d2s * sqT
     volga = vega * d1 * d2s * sqT
     # explicit fma: left to contraction, the vector body and the scalar remainder of a
@@ -231,40 +231,40 @@ def _from_shared(K, T, D, Dq, U, q, vol, w, spot, sh):
     zomma = gamma * (d12 - 1.0) * sqT * inv_s
     color = gamma * (qe + b * d1s + (1.0 - d12) * i2T)
     ultima = -vega * T * (d1s * d2s * (1.0 - d12) + d1s * d1s + d2s * d2s)
-    dual_delta = -w * D * N2
+    dual_delta = -cp * D * N2
     dual_gamma = D * n2 * inv_s * iK
     return (delta, gamma, vega, theta, rho, div_rho, vanna, volga, charm, veta, speed,
             zomma, color, ultima, dual_delta, dual_gamma)
 
 
 @scalar
-def _greeks(F, K, T, D, Dq, U, q, vol, w, spot):
-    return _from_shared(K, T, D, Dq, U, q, vol, w, spot, _shared(F, K, T, D, vol, w))
+def _greeks(F, K, T, D, Dq, U, q, vol, cp, spot):
+    return _from_shared(K, T, D, Dq, U, q, vol, cp, spot, _shared(F, K, T, D, vol, cp))
 
 
 @scalar
-def greeks_forward(F, K, T, D, vol, w):
+def greeks_forward(F, K, T, D, vol, cp):
     """All Black-76 Greeks (tuple in ``GREEK_NAMES`` order) for valid inputs.
 
-    F, K > 0, T > 0, D > 0, vol >= 0 finite, w = +1.0 call / -1.0 put.  Greeks not used by
+    F, K > 0, T > 0, D > 0, vol >= 0 finite, cp = +1.0 call / -1.0 put.  Greeks not used by
     the caller are removed by the compiler once this is inlined.
     """
-    return _greeks(F, K, T, D, D, F, 0.0, vol, w, False)
+    return _greeks(F, K, T, D, D, F, 0.0, vol, cp, False)
 
 
 @scalar
-def _greeks_spot(spot, K, T, D, q, Dq, F, vol, w):
-    return _greeks(F, K, T, D, Dq, spot, q, vol, w, True)
+def _greeks_spot(spot, K, T, D, q, Dq, F, vol, cp):
+    return _greeks(F, K, T, D, Dq, spot, q, vol, cp, True)
 
 
 @scalar
-def greeks_spot(spot, K, T, D, q, vol, w):
+def greeks_spot(spot, K, T, D, q, vol, cp):
     """All BSM Greeks (tuple in ``GREEK_NAMES`` order) for valid inputs (see above).
 
     The forward is F = spot e^{-qT} / D, as in ``black.bsm_forward``.
     """
     Dq = exp(-q * T)
-    return _greeks_spot(spot, K, T, D, q, Dq, spot * Dq / D, vol, w)
+    return _greeks_spot(spot, K, T, D, q, Dq, spot * Dq / D, vol, cp)
 
 
 # ------------------------------------------------------------------ loop tier
@@ -289,7 +289,7 @@ def _b76_row(F, K, T, D, vol, cp, i):
     tt = T[i]
     d = D[i]
     v = vol[i]
-    st = input_status(f, k, tt, d, v, cp[i])
+    st = input_status(f, k, tt, d, v, cp[i], 0.0)
     ok = st == S.OK
     return (st, f if ok else 1.0, k if ok else 1.0, tt if ok else 1.0, d if ok else 1.0,
             v if ok else 0.2, float(cp[i]))
@@ -383,16 +383,16 @@ def _slots(mask):
 # output row of each Greek, -1 if not requested) and the row loop ROWS as frozen globals.
 def _b76_rows_template(a, e, F, K, T, D, vol, cp, out, status):
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
-        st, f, k, tt, d, v, w = _b76_row(F, K, T, D, vol, cp, i)
-        g = greeks_forward(f, k, tt, d, v, w)
+        st, f, k, tt, d, v, cp_i = _b76_row(F, K, T, D, vol, cp, i)
+        g = greeks_forward(f, k, tt, d, v, cp_i)
         flag = _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821 (a global of each copy)
         status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
 
 
 def _bsm_rows_template(a, e, spot, K, T, D, q, vol, cp, out, status):
     for i in range(np.uint64(a), np.uint64(e)):
-        st, u, k, tt, d, y, dq, f, v, w = _bsm_row(spot, K, T, D, q, vol, cp, i)
-        g = _greeks_spot(u, k, tt, d, y, dq, f, v, w)
+        st, u, k, tt, d, y, dq, f, v, cp_i = _bsm_row(spot, K, T, D, q, vol, cp, i)
+        g = _greeks_spot(u, k, tt, d, y, dq, f, v, cp_i)
         flag = _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821
         status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
 

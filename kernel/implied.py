@@ -56,23 +56,14 @@ from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
 from .black import _is_inf, _is_nan, bsm_inputs, input_status
-from .special import (erfcx_pos, erfcx_pos_approx, erfcx_pos_approx_parts, exp_approx, log,
-                      log_approx)
+from .special import (INF, INV_SQRT2PI, LN2, NAN, SQRT1_2, SQRT2PI, erfcx_pos,
+                      erfcx_pos_approx, erfcx_pos_approx_parts, exp_approx, log, log_approx)
 
-NAN = np.nan
-INF = np.inf
-
-HOUSEHOLDER_STEPS = 2
-
-_SQRT1_2 = 0.7071067811865476
 _SQRT3 = 1.7320508075688772
-_SQRT2PI = 2.5066282746310002
-_INV_SQRT2PI = 0.3989422804014327
-_LN2 = 0.6931471805599453
 _KAPPA = 1.2091995761561452  # 2 pi / (3 sqrt3): lower map f_l = _KAPPA |x| Phi(.)^3
 _TINY_P = 2.0 ** -800        # premiums below this are scaled by _UP before dividing
 _UP = 2.0 ** 200
-_LN_UP = 200.0 * _LN2
+_LN_UP = 200.0 * LN2
 _BIG_R = 2.0 ** 1000         # F/K beyond this (or below its inverse) is rescaled first
 _R_TINY = 2.0 ** -30         # near-the-money small-vol formula below this time value / A
 
@@ -115,14 +106,14 @@ def log_moneyness(F, K):
     small = F * _BIG_R < K
     Fs = F * ((1.0 / _BIG_R) if big else (_BIG_R if small else 1.0))
     q = Fs / K
-    shift = 1000.0 * _LN2 if big else (-1000.0 * _LN2 if small else 0.0)
+    shift = 1000.0 * LN2 if big else (-1000.0 * LN2 if small else 0.0)
     # Fs = q K + e exactly, so ln(Fs/K) = ln q + ln(1 + e/(qK)) ~ ln q + e/Fs
     corr = fma(-q, K, Fs) / Fs
     return log(q) + shift + corr
 
 
 @scalar
-def normalised_time_value(P, F, K, D, theta):
+def normalised_time_value(P, F, K, D, cp):
     """The premium as the solver sees it: (r, rs, lsc, c, status).
 
     r = tv / A is the undiscounted time value over its upper bound A = min(F, K) (it may
@@ -131,9 +122,9 @@ def normalised_time_value(P, F, K, D, theta):
     1 - r formed from the inputs, U = F for calls and K for puts.  status is OK,
     MISSING_INPUT / NON_FINITE_INPUT (premium NaN / inf), BELOW_INTRINSIC,
     ABOVE_UPPER_BOUND or NO_TIME_VALUE.
-    Valid F, K, D > 0 and theta = +-1 are assumed.
+    Valid F, K, D > 0 and cp = +-1 are assumed.
     """
-    call = theta > 0.0
+    call = cp > 0.0
     U = F if call else K
     V = K if call else F
     A = min(F, K)
@@ -186,8 +177,8 @@ def _householder(s, x, lt, upper, sc, precise):
     t = 0.5 * s
     d1 = h + t
     u2 = t - h
-    za = (d1 if upper else -d1) * _SQRT1_2    # >= 0 on the region's side of s_c
-    zb = u2 * _SQRT1_2
+    za = (d1 if upper else -d1) * SQRT1_2    # >= 0 on the region's side of s_c
+    zb = u2 * SQRT1_2
     if precise:
         ea = erfcx_pos(za)
         eb = erfcx_pos(zb)
@@ -204,7 +195,7 @@ def _householder(s, x, lt, upper, sc, precise):
     # Householder terms need no g1 and no second division:
     #   a = nu h2 = nu sb2 - delta,  b = nu^2 h3 = nu (nu s2b3 - 3 delta sb2) + 2 delta^2
     # with h2 = s (ln y)'' / (ln y)' and h3 = s^2 (ln y)''' / (ln y)'.
-    ig1 = (0.5 * _SQRT2PI) * sw / s if precise else (0.5 * _SQRT2PI) * sw * inv_s
+    ig1 = (0.5 * SQRT2PI) * sw / s if precise else (0.5 * SQRT2PI) * sw * inv_s
     ig1 = -ig1 if upper else ig1
     sb2 = h * h - t * t                    # s b''/b'
     s2b3 = sb2 * sb2 - 3.0 * h * h - t * t  # s^2 b'''/b'
@@ -239,12 +230,12 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
     d1l = (1.5 / _SQRT3) * kap * p2 * p2 * g
     # kap * [(2 phi - z Phi) z'^2 + Phi z''] / (E12 Phi...) at s_c, z = -sqrt(xi/6)
     zc = -sxi * 0.4082482904638631
-    kbr = kap * (2.0 * _INV_SQRT2PI - zc * p2) * (1.0 / 12.0) \
+    kbr = kap * (2.0 * INV_SQRT2PI - zc * p2) * (1.0 / 12.0) \
         - _KAPPA * p2 * sxi * 0.4082482904638631
-    hdd_l = 3.0 * p2 * _SQRT2PI * rc * g * kbr
+    hdd_l = 3.0 * p2 * SQRT2PI * rc * g * kbr
     # upper: f(c) on [0, c_c]: f(0)=0, f'(0)=1/2; per c_c; t = c / c_c
     d1u = 0.5 * g
-    hdd_u = kc * (0.125 * sc) * _SQRT2PI * g
+    hdd_u = kc * (0.125 * sc) * SQRT2PI * g
     phi_ = (phl if lower else p2 * g) * ih
     d0 = 1.0 if lower else 0.5
     d1 = d1l if lower else d1u
@@ -269,7 +260,7 @@ def _initial_guess(x, r, c, lt, lower, sc, rc):
     s0 = (xi if lower else 2.0 * y * y) / (y * (_SQRT3 if lower else 1.0))
     # convexity bounds: chord (lower bound) and tangent at s_c (upper bound below s_c,
     # lower bound above)
-    tang = sc + ((r - rc) if lower else (kc - c)) * _SQRT2PI
+    tang = sc + ((r - rc) if lower else (kc - c)) * SQRT2PI
     chord = sc * r * ih
     sl = s0 if s0 >= chord else chord
     sl = tang if (tang > 0.0 and not (sl <= tang)) else sl
@@ -289,17 +280,17 @@ def implied_total_vol(x, r, rs, lsc, c):
     lower = r <= rc
     lt = log(rs if lower else c) - (lsc if lower else 0.0)   # ln r* or ln c*
     s = _initial_guess(x, r, c, lt, lower, sc, rc)
-    # HOUSEHOLDER_STEPS = 2, written out: an inner loop would be what LLVM vectorises
+    # two steps, written out: an inner loop would be what LLVM vectorises
     s = _householder(s, x, lt, not lower, sc, False)
     s = _householder(s, x, lt, not lower, sc, True)
     tiny = (not lower) and r < _R_TINY
-    return _SQRT2PI * (r - 0.5 * x) if tiny else s
+    return SQRT2PI * (r - 0.5 * x) if tiny else s
 
 
 @scalar
-def black_total_vol(P, F, K, D, theta):
-    """(s, status) for one Black-76 quote with valid F, K, D > 0, theta = +-1."""
-    r, rs, lsc, c, st = normalised_time_value(P, F, K, D, theta)
+def black_total_vol(P, F, K, D, cp):
+    """(s, status) for one Black-76 quote with valid F, K, D > 0, cp = +-1."""
+    r, rs, lsc, c, st = normalised_time_value(P, F, K, D, cp)
     x = log_moneyness(F, K)
     s = implied_total_vol(-abs(x), r, rs, lsc, c)
     good = s > 0.0 and s < INF
@@ -314,7 +305,7 @@ def _black76_iv_rows(a, e, premium, F, K, T, D, cp, iv_out, status_out):
         k = K[i]
         tt = T[i]
         dd = D[i]
-        st = input_status(f, k, tt, dd, 0.0, cp[i])
+        st = input_status(f, k, tt, dd, 0.0, cp[i], 0.0)
         ok = st == S.OK
         s, st2 = black_total_vol(premium[i], f if ok else 1.0, k if ok else 1.0,
                                  dd if ok else 1.0, float(cp[i]) if ok else 1.0)

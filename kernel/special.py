@@ -41,10 +41,14 @@ import struct
 from ._intrinsics import f64_as_i64, fma, i64_as_f64
 from ._jit import scalar
 
-_INF = math.inf
-_NAN = math.nan
-_SQRT1_2 = 0.7071067811865476
-_INV_SQRT_2PI = 0.3989422804014327
+# Shared constants of the kernel, defined once (the other modules import them)
+INF = math.inf
+NAN = math.nan
+SQRT1_2 = 0.7071067811865476      # 1/sqrt(2)
+SQRT2PI = 2.5066282746310002      # sqrt(2 pi)
+INV_SQRT2PI = 0.3989422804014327  # 1/sqrt(2 pi)
+SQRT_PI_2 = 1.2533141373155003    # sqrt(pi/2)
+LN2 = 0.6931471805599453
 _INV_SQRT_PI = 0.5641895835477563
 
 # 1.5 * 2**52: adding it rounds a float64 of magnitude < 2**51 to an integer n, and the
@@ -171,9 +175,9 @@ def log(x):
     t2 = z * (_LG1 + w * (_LG3 + w * (_LG5 + w * _LG7)))
     R = t2 + t1
     res = s * (hfsq + R) + dk * _LN2_LO - hfsq + f + dk * _LN2_HI
-    res = res if x < _INF else x          # +inf -> inf, NaN -> NaN
-    res = -_INF if x == 0.0 else res
-    res = _NAN if x < 0.0 else res
+    res = res if x < INF else x          # +inf -> inf, NaN -> NaN
+    res = -INF if x == 0.0 else res
+    res = NAN if x < 0.0 else res
     return res
 
 
@@ -195,7 +199,7 @@ def log_approx(x):
     q = q * z + (1.0 / 3.0)
     q = q * z + 1.0
     res = fma(dk, _LN2_HI + _LN2_LO, 2.0 * s * q)
-    return res if (x > 0.0 and x < _INF) else _NAN
+    return res if (x > 0.0 and x < INF) else NAN
 
 
 # ---------------------------------------------------------------------------------------
@@ -428,7 +432,7 @@ def norm_cdf(x):
     where erfcx is flat (the rounding of x/sqrt2 costs ~1 ulp) and exp(-x^2/2) is formed
     from the exact square of x itself.  For x > 0.66, Phi = 1 - Phi(-x) in the same form.
     """
-    u = -x * _SQRT1_2
+    u = -x * SQRT1_2
     y = abs(u)
     val = _cody(u, y)                     # erfc(u) if |u| <= 0.46875, else erfcx(|u|)
     ax = abs(x)
@@ -444,7 +448,7 @@ def norm_pdf(x):
     <= 2e-15 relative while the result is normal (|x| <= 37.5), 0 at +-inf."""
     ax = abs(x)
     xc = 40.0 if ax > 40.0 else ax
-    return _INV_SQRT_2PI * _exp_sq(xc, -0.5)
+    return INV_SQRT2PI * _exp_sq(xc, -0.5)
 
 
 @scalar

@@ -1,7 +1,26 @@
-"""Row status codes written by the kernels (int8), and their names.
+"""Row status codes written by the kernels (int8), their names, and their priority.
 
 The bindings turn the codes into a dictionary-encoded string column.  Codes are stable:
 append new ones, never renumber.  The README documents each name.
+
+Every status is decided here and in the kernels' row loops, once; nothing re-ranks it
+afterwards.  Priority, highest first (a row gets the first that applies):
+
+1. input problems, in code order: ``missing_input`` (any required input NaN/null, the
+   call/put flag included), ``non_finite_input`` (any required input +-inf, the discount
+   factor and the extra inputs of a model included), then the range checks
+   ``bad_underlying``, ``bad_strike``, ``negative_vol``, ``expired``, ``out_of_range``;
+2. quote problems of a bid/ask pair: ``crossed_quote`` (all three sides), then
+   ``zero_bid`` (the bid and the mid);
+3. the premium's own problems, per side: ``missing_input`` / ``non_finite_input`` of the
+   premium, ``below_intrinsic``, ``above_upper_bound``, ``no_time_value``, and an output
+   that is not a finite double (``out_of_range``).
+
+A rate is turned into a discount factor by ``black.discount_factors``, which carries the
+rate's own problems into the factor: a NaN rate gives NaN (missing_input), an infinite
+rate or time gives +inf (non_finite_input), and e^{-rT} that is not a positive finite
+double gives 0 (out_of_range).  So a row's status is the same whichever of ``rate`` or
+``discount`` it came with.
 """
 
 import numpy as np
@@ -13,7 +32,8 @@ BAD_UNDERLYING = 3     # forward / spot <= 0
 BAD_STRIKE = 4         # strike <= 0
 NEGATIVE_VOL = 5       # vol < 0
 EXPIRED = 6            # time to expiry <= 0
-OUT_OF_RANGE = 7       # discount factor not in (0, inf), or a derived forward not representable
+OUT_OF_RANGE = 7       # discount factor <= 0 (or e^{-rT} not representable), a derived
+#                        forward or the output itself not a finite double
 # implied volatility
 BELOW_INTRINSIC = 8    # premium below the discounted intrinsic value (or negative)
 ABOVE_UPPER_BOUND = 9  # premium at or above the no-arbitrage upper bound
@@ -36,6 +56,11 @@ NAMES = (
     "crossed_quote",
     "zero_bid",
 )
+
+# The input problems, as a bit set over the codes (``(INPUT_PROBLEMS >> code) & 1``: a
+# branch-free test inside the loops).  A new input problem appends a code and a bit here.
+INPUT_PROBLEMS = sum(1 << c for c in (MISSING_INPUT, NON_FINITE_INPUT, BAD_UNDERLYING,
+                                      BAD_STRIKE, NEGATIVE_VOL, EXPIRED, OUT_OF_RANGE))
 
 STATUS_DTYPE = np.int8
 

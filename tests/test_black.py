@@ -356,8 +356,9 @@ SENTENCES = [
     ("an infinite forward gives non_finite_input", dict(F=INF), S.NON_FINITE_INPUT),
     ("an infinite strike gives non_finite_input", dict(K=INF), S.NON_FINITE_INPUT),
     ("an infinite expiry gives non_finite_input", dict(T=INF), S.NON_FINITE_INPUT),
-    ("an infinite discount factor gives out_of_range (D must lie in (0, inf))", dict(D=INF),
-     S.OUT_OF_RANGE),
+    ("an infinite discount factor gives non_finite_input (as every +-inf input does)",
+     dict(D=INF), S.NON_FINITE_INPUT),
+    ("a -inf discount factor gives non_finite_input", dict(D=-INF), S.NON_FINITE_INPUT),
     ("an infinite vol gives non_finite_input", dict(vol=INF), S.NON_FINITE_INPUT),
     ("a -inf vol gives non_finite_input", dict(vol=-INF), S.NON_FINITE_INPUT),
     ("a zero discount factor gives out_of_range", dict(D=0.0), S.OUT_OF_RANGE),
@@ -518,12 +519,17 @@ def test_discount_factors_within_one_ulp_of_mpmath():
     # reference: mpmath at 40 digits, exp(-r T) of the double product r*T as given
     import mpmath
     rng = np.random.default_rng(17)
-    r = np.concatenate([rng.uniform(-0.05, 0.25, 400), [0.0, -0.0, np.nan, np.inf, 30.0]])
+    r = np.concatenate([rng.uniform(-0.05, 0.25, 400),
+                        [0.0, -0.0, np.nan, np.inf, -2000.0, 0.05, 30.0]])
     T = np.concatenate([np.exp(rng.uniform(np.log(1e-4), np.log(50.0), 400)),
-                        [1.0, 2.0, 1.0, 1.0, 30.0]])
+                        [1.0, 2.0, 1.0, 1.0, 1.0, np.inf, 30.0]])
     D = black.discount_factors(r, T, np.empty(r.size))
     with mpmath.workdps(40):
-        for ri, ti, di in zip(r[:-3], T[:-3], D[:-3]):
+        for ri, ti, di in zip(r[:-5], T[:-5], D[:-5]):
             ref = mpmath.exp(-mpmath.mpf(float(ri * ti)))
             assert abs(mpmath.mpf(di) - ref) <= np.spacing(float(ref)), (ri, ti)
-    assert np.isnan(D[-3]) and D[-2] == 0.0 and D[-1] == pytest.approx(np.exp(-900.0))
+    # the inputs' problems travel in the factor (kernel/status.py): NaN rate -> NaN
+    # (missing_input), infinite rate or time -> +inf (non_finite_input), e^{-rT} that
+    # overflows -> 0 (out_of_range)
+    assert np.isnan(D[-5]) and D[-4] == np.inf and D[-3] == 0.0 and D[-2] == np.inf
+    assert D[-1] == pytest.approx(np.exp(-900.0))

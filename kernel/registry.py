@@ -1,0 +1,156 @@
+"""The registry: every model and every operation volsweep knows, as plain data.
+
+Everything that lists models or operations derives from these two tables: the bindings'
+dispatch and column plan (``volsweep.api``, ``volsweep._columns``), ``volsweep.warmup()``,
+the CLI's ``--model`` choices and help, the benchmark report's cases and the README's
+tables (``tests/test_registry.py`` checks the README against them).  Adding a model is its
+kernels plus one ``Model`` entry in ``MODELS`` (DEVELOPERS.md, "Adding a model").
+
+Kernel calling convention, the same for every model (``U`` is the model's underlying
+input, ``extras`` its extra inputs in ``Model.extras`` order, all float64 arrays of one
+length n; ``cp`` int8 call/put signs, +1 call, -1 put, 0 missing; outputs preallocated):
+
+===============  ===========================================================================
+operation        kernel signature
+===============  ===========================================================================
+``price``        ``(U, K, T, D, *extras, vol, cp, price, status)``
+``implied_vol``  ``(premium, U, K, T, D, *extras, cp, iv, status)``
+``greeks``       ``(U, K, T, D, *extras, vol, cp, mask, out, status)`` -> n non-finite
+``sweep``        ``(premium, U, K, T, D, *extras, cp, mask, iv, out, status)`` -> n non-finite
+``bid_ask``      ``(bid, ask, U, K, T, D, *extras, cp, mask, iv_bid, iv_ask, iv, unc, out,
+                 status_bid, status_ask, status)`` -> n non-finite (``mask`` must hold vega)
+===============  ===========================================================================
+
+No Arrow and no bindings here: this module imports the kernels only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from . import black as _black
+from . import greeks as _greeks
+from . import implied as _implied
+from . import quotes as _quotes
+from . import sweep as _sweep
+
+
+@dataclass(frozen=True)
+class Input:
+    """An input column of a model beyond the common ones (strike, expiry, rate, call/put)."""
+
+    name: str           # default column name (the data contract's)
+    default: float      # value when the column is absent
+    doc: str
+
+
+@dataclass(frozen=True)
+class Model:
+    name: str
+    doc: str                       # one line
+    underlying: str                # "spot" or "forward": the column the Greeks differentiate
+    extras: tuple                  # of Input, in kernel argument order (after D)
+    greeks: tuple                  # the Greeks it defines, in GREEK_NAMES order
+    kernels: dict = field(repr=False)   # operation -> kernel entry point (see above)
+    exercise: str = "european"
+
+
+@dataclass(frozen=True)
+class Operation:
+    """A public row operation of ``volsweep`` (Arrow table in, same rows plus outputs)."""
+
+    name: str
+    needs: str                     # "vol" (a vol column) or "quote" (premium, or bid and ask)
+    outputs: tuple                 # output columns (symbolic: "<greeks>", "<iv>")
+    doc: str
+
+
+def _all_but(*names):
+    return tuple(g for g in _greeks.GREEK_NAMES if g not in names)
+
+
+_DIV_YIELD = Input("div_yield", 0.0, "continuous dividend yield / borrow, per year")
+
+MODELS = {
+    "bsm": Model(
+        name="bsm",
+        doc="Black-Scholes-Merton: European options on a spot price with a continuous "
+            "dividend yield",
+        underlying="spot",
+        extras=(_DIV_YIELD,),
+        greeks=_greeks.GREEK_NAMES,
+        kernels={"price": _black.bsm_price, "implied_vol": _implied.bsm_iv,
+                 "greeks": _greeks.bsm_greeks, "sweep": _sweep.bsm_sweep,
+                 "bid_ask": _quotes.bsm_bid_ask},
+    ),
+    "black76": Model(
+        name="black76",
+        doc="Black-76: European options on a forward or futures price (lognormal)",
+        underlying="forward",
+        extras=(),
+        greeks=_all_but("div_rho"),
+        kernels={"price": _black.black76_price, "implied_vol": _implied.black76_iv,
+                 "greeks": _greeks.black76_greeks, "sweep": _sweep.black76_sweep,
+                 "bid_ask": _quotes.black76_bid_ask},
+    ),
+}
+
+MODEL_NAMES = tuple(MODELS)
+
+# What each Greek is, and its units: raw (the analytic derivative) and desk (raw times
+# greeks.DESK_SCALE).  "underlying" is the model's underlying input (spot or forward).
+GREEKS = {
+    "delta": ("dV/dU", "per 1 of underlying", "per 1 of underlying"),
+    "gamma": ("d2V/dU2", "per 1 of underlying, squared", "per 1 of underlying, squared"),
+    "vega": ("dV/dsigma", "per 1.00 of vol", "per vol point"),
+    "theta": ("-dV/dT", "per year", "per calendar day"),
+    "rho": ("dV/dr", "per 1.00 of rate", "per 1% of rate"),
+    "div_rho": ("dV/dq", "per 1.00 of yield", "per 1% of yield"),
+    "vanna": ("d2V/dU dsigma", "per 1 of underlying per 1.00 of vol",
+              "per 1 of underlying per vol point"),
+    "volga": ("d2V/dsigma2", "per 1.00 of vol, squared", "per vol point, squared"),
+    "charm": ("-d2V/dU dT", "per 1 of underlying per year",
+              "per 1 of underlying per calendar day"),
+    "veta": ("-d2V/dsigma dT", "per 1.00 of vol per year", "per vol point per calendar day"),
+    "speed": ("d3V/dU3", "per 1 of underlying, cubed", "per 1 of underlying, cubed"),
+    "zomma": ("d3V/dU2 dsigma", "per 1 of underlying squared per 1.00 of vol",
+              "per 1 of underlying squared per vol point"),
+    "color": ("-d3V/dU2 dT", "per 1 of underlying squared per year",
+              "per 1 of underlying squared per calendar day"),
+    "ultima": ("d3V/dsigma3", "per 1.00 of vol, cubed", "per vol point, cubed"),
+    "dual_delta": ("dV/dK", "per 1 of strike", "per 1 of strike"),
+    "dual_gamma": ("d2V/dK2", "per 1 of strike, squared", "per 1 of strike, squared"),
+}
+assert tuple(GREEKS) == _greeks.GREEK_NAMES
+
+OPERATIONS = {
+    "price": Operation("price", "vol", ("price", "status"),
+                       "model prices at the volatility in the vol column"),
+    "implied_vol": Operation("implied_vol", "quote", ("<iv>", "status"),
+                             "implied volatilities of premiums, or of bid, ask and mid"),
+    "greeks": Operation("greeks", "vol", ("<greeks>", "status"),
+                        "analytic Greeks at the volatility in the vol column"),
+    "sweep": Operation("sweep", "quote", ("<iv>", "<greeks>", "status"),
+                       "implied vol from the quote, then the Greeks at that vol, one pass"),
+}
+
+KERNEL_OPERATIONS = ("price", "implied_vol", "greeks", "sweep", "bid_ask")
+
+
+def model(name) -> Model:
+    """The registry entry of ``name``; ValueError naming the known models otherwise."""
+    try:
+        return MODELS[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown model {name!r}; expected one of "
+                         f"{', '.join(MODEL_NAMES)}") from None
+
+
+def _check():
+    for m in MODELS.values():
+        assert set(m.kernels) == set(KERNEL_OPERATIONS), m.name
+        assert m.underlying in ("spot", "forward"), m.name
+        assert all(g in GREEKS for g in m.greeks), m.name
+
+
+_check()
