@@ -120,7 +120,7 @@ def cmd_gen(args) -> int:
 
 
 def cmd_price(args) -> int:
-    from ._prepare_fallback import prepare   # TEMPORARY: api.prepare once it lands
+    from .api import prepare
     from .atomic_parquet import dictionary_columns
 
     source = _open(args)

@@ -83,7 +83,7 @@ class SweepPlan:
     @classmethod
     def build(cls, schema: pa.Schema, *, model="bsm", which=None, units="raw", columns=None,
               as_of=None, quotes="auto", keep=None) -> "SweepPlan":
-        from ._prepare_fallback import prepare   # TEMPORARY: api.prepare once it lands
+        from .api import prepare
 
         columns = dict(columns or {})
         names = schema.names

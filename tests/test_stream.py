@@ -171,6 +171,26 @@ def test_empty_input_gives_empty_output_with_the_output_schema(snap, tmp_path):
     assert got.num_rows == 0 and got.column_names[-1] == "status" and "iv" in got.column_names
 
 
+@pytest.mark.parametrize("command", [["sweep", "--quotes", "premium"],
+                                     ["price", "--map", "vol=true_vol"]])
+def test_the_operation_is_prepared_once_per_run(snap_file, tmp_path, monkeypatch, command):
+    import volsweep.api
+
+    calls = []
+    real = volsweep.api.prepare
+
+    def counting(*args, **kw):
+        calls.append(args[0])
+        return real(*args, **kw)
+
+    monkeypatch.setattr(volsweep.api, "prepare", counting)
+    out = tmp_path / "o.parquet"
+    assert main([command[0], snap_file, "-o", str(out), "--batch-rows", "1000"]
+                + command[1:]) == 0
+    assert pq.read_metadata(out).num_rows == ROWS          # twelve batches
+    assert calls == [command[0]]
+
+
 # ------------------------------------------------------------------- atomic output
 class _Boom(Exception):
     pass
