@@ -25,7 +25,7 @@ test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)
-	$(BIN)/volsweep bench
+	$(BIN)/python -m benchmarks.report
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache .benchmarks

@@ -96,19 +96,22 @@ def peak_rss(paths, out_dir):
 
 
 def throughput(path, out_dir, repeats=5, which=None):
-    from volsweep import stream
+    from volsweep.atomic_parquet import dictionary_columns
+    from volsweep.input_files import open_input
+    from volsweep.stream_to_parquet import stream_to_parquet
+    from volsweep.sweep_plan import SweepPlan
 
-    src = stream.open_input(path)
-    plan = stream.SweepPlan.build(src.schema, quotes="premium", which=which)
+    src = open_input(path)
+    plan = SweepPlan.build(src.schema, quotes="premium", which=which)
     out = os.path.join(out_dir, "t.parquet")
 
     def sweep():
-        stream.run(src, out, plan.transform, plan.out_schema, overwrite=True,
-                   dictionary=plan.dictionary)
+        stream_to_parquet(src, out, plan.transform, plan.out_schema, overwrite=True,
+                          dictionary=plan.dictionary)
 
     def plain():
-        stream.run(src, out, lambda b: b, src.schema, overwrite=True,
-                   dictionary=stream.dictionary_columns(src.schema))
+        stream_to_parquet(src, out, lambda b: b, src.schema, overwrite=True,
+                          dictionary=dictionary_columns(src.schema))
 
     def pyarrow_whole():
         pq.write_table(pq.read_table(path), out)
@@ -197,14 +200,16 @@ def main(argv=None) -> int:
 
 # ------------------------------------------------------------------ pytest-benchmark
 def test_stream_sweep_parquet(benchmark, tmp_path):
-    from volsweep import stream
+    from volsweep.input_files import open_input
+    from volsweep.stream_to_parquet import stream_to_parquet
+    from volsweep.sweep_plan import SweepPlan
 
     path = make_dataset(str(tmp_path / "in.parquet"), 500_000)
-    src = stream.open_input(path)
-    plan = stream.SweepPlan.build(src.schema, quotes="premium")
+    src = open_input(path)
+    plan = SweepPlan.build(src.schema, quotes="premium")
     out = str(tmp_path / "out.parquet")
-    benchmark(lambda: stream.run(src, out, plan.transform, plan.out_schema, overwrite=True,
-                                 dictionary=plan.dictionary))
+    benchmark(lambda: stream_to_parquet(src, out, plan.transform, plan.out_schema,
+                                        overwrite=True, dictionary=plan.dictionary))
 
 
 if __name__ == "__main__":

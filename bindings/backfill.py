@@ -32,7 +32,11 @@ from dataclasses import dataclass, field
 
 import pyarrow.parquet as pq
 
-from . import stream as _stream
+from .atomic_parquet import stale_temps
+from .file_errors import StreamError, one_line
+from .input_files import DEFAULT_BATCH_ROWS, data_files, open_input
+from .stream_to_parquet import stream_to_parquet
+from .sweep_plan import SWEEP_STAMP_KEY, SweepPlan
 
 PART_NAME = "part-0.parquet"
 CONNECT_TIMEOUT = "10s"      # to reach a running scheduler given by address
@@ -65,19 +69,19 @@ def find_partitions(src) -> list[Partition]:
     """Leaf folders of ``src`` holding data files, in lexicographic order."""
     src = os.path.abspath(os.fspath(src))
     if not os.path.isdir(src):
-        raise _stream.StreamError(f"cannot read {src}: not a directory (backfill reads a "
-                                  "partitioned dataset folder)")
+        raise StreamError(f"cannot read {src}: not a directory (backfill reads a "
+                          "partitioned dataset folder)")
     groups: dict[str, list] = {}
-    for path in _stream._data_files(src):
+    for path in data_files(src):
         groups.setdefault(os.path.relpath(os.path.dirname(path), src), []).append(path)
     if not groups:
-        raise _stream.StreamError(f"cannot read {src}: no data files in the directory")
+        raise StreamError(f"cannot read {src}: no data files in the directory")
     nested = [r for r in groups if r != "." and any(o != r and o.startswith(r + os.sep)
                                                     for o in groups)]
     if nested or ("." in groups and len(groups) > 1):
         where = nested[0] if nested else "."
-        raise _stream.StreamError(f"cannot read {src}: folder {where!r} holds data files and "
-                                  "sub-folders with data files; partitions must be leaves")
+        raise StreamError(f"cannot read {src}: folder {where!r} holds data files and "
+                          "sub-folders with data files; partitions must be leaves")
     return [Partition(rel, files) for rel, files in sorted(groups.items(),
                                                            key=lambda kv: kv[0].split(os.sep))]
 
@@ -96,7 +100,7 @@ def _complete_rows(target: str, files, stamp: bytes) -> int | None:
         return None
     try:
         md = pq.read_metadata(target)
-        made_with = (pq.read_schema(target).metadata or {}).get(_stream.SWEEP_STAMP_KEY)
+        made_with = (pq.read_schema(target).metadata or {}).get(SWEEP_STAMP_KEY)
     except Exception:   # unreadable: redo it
         return None
     if made_with != stamp:
@@ -146,25 +150,25 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
                 kernel=kernel_source_hash().hex()[:16])
     try:
-        source = _stream.open_input(os.path.dirname(part.files[0]), batch_rows,
-                                    files=part.files, partitioning=None)
-        plan = _stream.SweepPlan.build(source.schema, **options)
+        source = open_input(os.path.dirname(part.files[0]), batch_rows, files=part.files,
+                            partitioning=None)
+        plan = SweepPlan.build(source.schema, **options)
         done = _complete_rows(target, part.files, plan.stamp)
         if done is not None:
             return dict(info, state="skipped", rows=done, statuses={})
         os.makedirs(out_dir, exist_ok=True)
         before = _misses()
-        res = _stream.run(source, target, plan.transform, plan.out_schema, overwrite=True,
-                          dictionary=plan.dictionary)
+        res = stream_to_parquet(source, target, plan.transform, plan.out_schema,
+                                overwrite=True, dictionary=plan.dictionary)
     except (ValueError, TypeError, OSError) as exc:
-        raise _stream.StreamError(f"partition {part.rel}: {_stream._one_line(exc)}") from None
+        raise StreamError(f"partition {part.rel}: {one_line(exc)}") from None
     info["compiled"] = _misses() - before
     return dict(info, state="written", rows=res.rows, statuses=res.statuses)
 
 
 def _clean_temps(dst_root: str, parts) -> None:
     for part in parts:
-        for tmp in _stream.stale_temps(os.path.join(dst_root, part.rel, PART_NAME)):
+        for tmp in stale_temps(os.path.join(dst_root, part.rel, PART_NAME)):
             try:
                 os.remove(tmp)
             except FileNotFoundError:
@@ -182,7 +186,7 @@ def worker_environ() -> dict:
 
 def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as_of=None,
              quotes="auto", keep=None, scheduler=None, n_workers=None,
-             batch_rows=_stream.DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
+             batch_rows=DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
     """Sweep every partition of the dataset ``src`` into the same partitions under ``dst``.
 
     ``model``, ``which``, ``units``, ``columns``, ``as_of``: as for ``volsweep.sweep``.
@@ -190,7 +194,7 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
     input has both); ``keep``: input columns to copy (None: all).  ``scheduler``: address
     of a running Dask scheduler, or a ``distributed.Client``; None starts a LocalCluster
     of ``n_workers`` (default: one per core) single-threaded worker processes.
-    ``progress``: a ``stream.Progress`` counting partitions, or None.
+    ``progress``: a ``progress.Progress`` counting partitions, or None.
 
     Returns a ``BackfillResult`` (partitions written and skipped, rows, status counts).
     Schema problems in the first partition raise before any cluster is started.
@@ -199,13 +203,12 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
     src = os.path.abspath(os.fspath(src))
     dst = os.path.abspath(os.fspath(dst))
     if dst == src or dst.startswith(src + os.sep):
-        raise _stream.StreamError(f"the output {dst} must not be inside the input {src}")
+        raise StreamError(f"the output {dst} must not be inside the input {src}")
     parts = find_partitions(src)
     options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of,
                    quotes=quotes, keep=keep)
-    first = _stream.open_input(parts[0].files[0], batch_rows, files=parts[0].files,
-                               partitioning=None)
-    plan = _stream.SweepPlan.build(first.schema, **options)   # schema errors now
+    first = open_input(parts[0].files[0], batch_rows, files=parts[0].files, partitioning=None)
+    plan = SweepPlan.build(first.schema, **options)   # schema errors now
     os.makedirs(dst, exist_ok=True)
     _clean_temps(dst, parts)
     # complete partitions are skipped here (no cluster at all for a finished backfill) and
@@ -277,8 +280,8 @@ def _connect(distributed, scheduler, n_workers):
         try:
             return distributed.Client(scheduler, timeout=CONNECT_TIMEOUT), None
         except (OSError, TimeoutError) as exc:
-            raise _stream.StreamError(f"cannot reach the Dask scheduler at {scheduler}: "
-                                      f"{_stream._one_line(exc)}") from None
+            raise StreamError(f"cannot reach the Dask scheduler at {scheduler}: "
+                              f"{one_line(exc)}") from None
     import dask
 
     env = worker_environ()

@@ -42,7 +42,7 @@ def _mapping(pairs) -> dict:
 
 
 def _status_summary(tables) -> str:
-    from .stream import count_statuses, status_table
+    from .status_counts import count_statuses, status_table
 
     counts = {}
     for t in tables:
@@ -51,7 +51,7 @@ def _status_summary(tables) -> str:
 
 
 def _open(args):
-    from .stream import open_input
+    from .input_files import open_input
 
     if args.batch_rows < 1:
         raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
@@ -59,11 +59,13 @@ def _open(args):
 
 
 def _stream(args, source, transform, out_schema, verb: str, dictionary=None) -> int:
-    from .stream import Progress, run, status_table
+    from .progress import Progress
+    from .status_counts import status_table
+    from .stream_to_parquet import stream_to_parquet
 
-    progress = Progress(source.num_rows)
-    res = run(source, args.output, transform, out_schema, overwrite=args.overwrite,
-              progress=progress, dictionary=dictionary)
+    res = stream_to_parquet(source, args.output, transform, out_schema,
+                            overwrite=args.overwrite, progress=Progress(source.num_rows),
+                            dictionary=dictionary)
     rate = res.rows / res.seconds if res.seconds > 0 else 0.0
     print(f"{verb} {res.rows:,d} rows in {res.seconds:.2f} s ({rate / 1e6:.2f} M rows/s) "
           f"-> {args.output}", file=sys.stderr)
@@ -118,19 +120,14 @@ def cmd_gen(args) -> int:
 
 
 def cmd_price(args) -> int:
-    import volsweep
+    from .api import prepare
+    from .atomic_parquet import dictionary_columns
 
-    from .stream import dictionary_columns
-
-    cols = _mapping(args.map)
     source = _open(args)
-
-    def transform(batch):
-        return volsweep.price(batch, model=args.model, columns=cols, as_of=args.as_of)
-
-    out_schema = transform(source.schema.empty_table()).schema
-    return _stream(args, source, transform, out_schema, "priced",
-                   dictionary_columns(out_schema))
+    priced = prepare("price", source.schema, model=args.model, columns=_mapping(args.map),
+                     as_of=args.as_of)
+    return _stream(args, source, priced, priced.out_schema, "priced",
+                   dictionary_columns(priced.out_schema))
 
 
 def _greeks_arg(text: str):
@@ -165,7 +162,7 @@ def _sweep_options(args) -> dict:
 
 
 def cmd_sweep(args) -> int:
-    from .stream import SweepPlan
+    from .sweep_plan import SweepPlan
 
     options = _sweep_options(args)
     source = _open(args)
@@ -179,7 +176,8 @@ def cmd_backfill(args) -> int:
     except ImportError:
         raise CliError("volsweep backfill needs Dask: pip install 'volsweep[dask]'") from None
     from .backfill import backfill
-    from .stream import Progress, status_table
+    from .progress import Progress
+    from .status_counts import status_table
 
     if args.batch_rows < 1:
         raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
@@ -200,14 +198,15 @@ def cmd_backfill(args) -> int:
 
 
 def cmd_bench(args) -> int:
-    # benchmarks/ lives beside bindings/ in a source checkout (it is not installed)
+    import subprocess
+
+    # benchmarks/ lives beside bindings/ in a source checkout (it is not installed); the
+    # report runs as its own process there, so the product never imports it
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     if not os.path.isdir(os.path.join(root, "benchmarks")):
         raise CliError("volsweep bench needs a source checkout (benchmarks/ not found)")
-    sys.path.insert(0, root)
-    from benchmarks import report
-
-    return report.main(rows=args.rows)
+    cmd = [sys.executable, "-m", "benchmarks.report", "--rows", str(args.rows)]
+    return subprocess.run(cmd, cwd=root).returncode
 
 
 _SWEEP_EPILOG = """\
@@ -223,7 +222,7 @@ Outputs are model values, not investment advice.
 
 
 def _default_batch_rows() -> int:
-    from .stream import DEFAULT_BATCH_ROWS
+    from .input_files import DEFAULT_BATCH_ROWS
 
     return DEFAULT_BATCH_ROWS
 

@@ -13,7 +13,10 @@ import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 import pytest
 
-from volsweep import stream
+from volsweep.atomic_parquet import temp_path
+from volsweep.input_files import open_input
+from volsweep.stream_to_parquet import stream_to_parquet
+from volsweep.sweep_plan import SWEEP_STAMP_KEY, SweepPlan
 from volsweep.cli import main
 from volsweep.data_gen import write_history
 
@@ -36,9 +39,9 @@ def _history(root, rows=4000):
 
 def _single_machine(src_file, dst_file):
     """The reference: the same partition streamed in this process."""
-    source = stream.open_input(src_file, batch_rows=1000)
-    plan = stream.SweepPlan.build(source.schema, **OPTS)
-    stream.run(source, dst_file, plan.transform, plan.out_schema)
+    source = open_input(src_file, batch_rows=1000)
+    plan = SweepPlan.build(source.schema, **OPTS)
+    stream_to_parquet(source, dst_file, plan.transform, plan.out_schema)
     return pq.read_table(dst_file)
 
 
@@ -123,7 +126,7 @@ def test_partial_output_resumes(tmp_path):
     before = os.stat(os.path.join(done, "part-0.parquet")).st_mtime_ns
     stale_dir = os.path.join(dst, "date=2031-03-11")
     os.makedirs(stale_dir)
-    with open(stream.temp_path(os.path.join(stale_dir, "part-0.parquet")), "wb") as f:
+    with open(temp_path(os.path.join(stale_dir, "part-0.parquet")), "wb") as f:
         f.write(b"half a file")
     short_dir = os.path.join(dst, "date=2031-03-12")
     os.makedirs(short_dir)
@@ -238,7 +241,7 @@ def test_other_options_recompute_instead_of_skipping(tmp_path):
     again = bf.backfill(src, dst, n_workers=1, units="desk", **OPTS)   # same columns
     assert (first.written, again.written, again.skipped) == (1, 1, 0)
     out = pq.read_table(os.path.join(dst, "date=2031-03-10", "part-0.parquet"))
-    source = stream.open_input(paths[0])
-    plan = stream.SweepPlan.build(source.schema, units="desk", **OPTS)
-    assert out.schema.metadata[stream.SWEEP_STAMP_KEY] == plan.stamp
+    source = open_input(paths[0])
+    plan = SweepPlan.build(source.schema, units="desk", **OPTS)
+    assert out.schema.metadata[SWEEP_STAMP_KEY] == plan.stamp
     assert bf.backfill(src, dst, units="desk", **OPTS).skipped == 1

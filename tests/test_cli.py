@@ -96,3 +96,27 @@ def test_module_entry_point_runs_a_small_demo():
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     assert "contracts/s" in r.stdout and "ok" in r.stdout
+
+
+def test_importing_the_product_does_not_import_benchmarks():
+    code = ("import sys, volsweep, volsweep.cli; "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] == 'benchmarks'))")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.strip() == "[]"
+
+
+def test_bench_runs_the_report_as_a_child_process(monkeypatch):
+    import os
+
+    calls = []
+
+    def fake_run(cmd, cwd=None, **kw):
+        calls.append((cmd, cwd))
+        return subprocess.CompletedProcess(cmd, 3)
+
+    monkeypatch.setattr(subprocess, "run", fake_run)
+    assert main(["bench", "--rows", "1000"]) == 3          # the report's exit status
+    (cmd, cwd), = calls
+    assert cmd == [sys.executable, "-m", "benchmarks.report", "--rows", "1000"]
+    assert os.path.isfile(os.path.join(cwd, "benchmarks", "report.py"))

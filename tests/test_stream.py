@@ -15,7 +15,10 @@ import pyarrow.parquet as pq
 import pytest
 
 import volsweep
-from volsweep import stream
+from volsweep.input_files import DEFAULT_BATCH_ROWS, open_input
+from volsweep.progress import Progress
+from volsweep.stream_to_parquet import stream_to_parquet
+from volsweep.sweep_plan import SweepPlan
 from volsweep.cli import main
 from volsweep.data_gen import make_snapshot, write_history, write_snapshot
 
@@ -63,7 +66,7 @@ def in_memory(table: pa.Table, drop=(), **kw) -> pa.Table:
     return table
 
 
-@pytest.mark.parametrize("batch_rows", [1000, 4096, stream.DEFAULT_BATCH_ROWS])
+@pytest.mark.parametrize("batch_rows", [1000, 4096, DEFAULT_BATCH_ROWS])
 def test_streamed_premium_sweep_equals_in_memory_bit_for_bit(snap, snap_file, tmp_path,
                                                              batch_rows):
     out = tmp_path / "o.parquet"
@@ -127,7 +130,7 @@ def test_ipc_file_ipc_stream_and_csv_inputs(snap, tmp_path):
         w.write_table(small, max_chunksize=1700)
     want = in_memory(small)
     for path in (ipc_file, ipc_stream):
-        src = stream.open_input(str(path), batch_rows=999)
+        src = open_input(str(path), batch_rows=999)
         assert all(b.num_rows <= 999 for b in src.batches())   # big batches are re-chunked
         out = tmp_path / (path.name + ".parquet")
         assert main(["sweep", str(path), "-o", str(out), "--batch-rows", "999"]) == 0
@@ -168,6 +171,26 @@ def test_empty_input_gives_empty_output_with_the_output_schema(snap, tmp_path):
     assert got.num_rows == 0 and got.column_names[-1] == "status" and "iv" in got.column_names
 
 
+@pytest.mark.parametrize("command", [["sweep", "--quotes", "premium"],
+                                     ["price", "--map", "vol=true_vol"]])
+def test_the_operation_is_prepared_once_per_run(snap_file, tmp_path, monkeypatch, command):
+    import volsweep.api
+
+    calls = []
+    real = volsweep.api.prepare
+
+    def counting(*args, **kw):
+        calls.append(args[0])
+        return real(*args, **kw)
+
+    monkeypatch.setattr(volsweep.api, "prepare", counting)
+    out = tmp_path / "o.parquet"
+    assert main([command[0], snap_file, "-o", str(out), "--batch-rows", "1000"]
+                + command[1:]) == 0
+    assert pq.read_metadata(out).num_rows == ROWS          # twelve batches
+    assert calls == [command[0]]
+
+
 # ------------------------------------------------------------------- atomic output
 class _Boom(Exception):
     pass
@@ -190,11 +213,11 @@ def test_failure_or_interrupt_leaves_no_partial_output(snap_file, tmp_path, exc,
     out = tmp_path / "o.parquet"
     if existing:
         out.write_bytes(b"previous result")
-    src = stream.open_input(snap_file, batch_rows=1000)
+    src = open_input(snap_file, batch_rows=1000)
     holder, transform = _failing_after(3, exc)
-    holder["plan"] = stream.SweepPlan.build(src.schema, quotes="premium")
+    holder["plan"] = SweepPlan.build(src.schema, quotes="premium")
     with pytest.raises(type(exc)):
-        stream.run(src, str(out), transform, holder["plan"].out_schema, overwrite=True)
+        stream_to_parquet(src, str(out), transform, holder["plan"].out_schema, overwrite=True)
     assert holder["n"] == 4                     # it did write three batches first
     if existing:
         assert out.read_bytes() == b"previous result"
@@ -295,7 +318,7 @@ class _Tty(io.StringIO):
 def test_progress_bar_only_on_a_terminal():
     tty, pipe = _Tty(), io.StringIO()
     for s in (tty, pipe):
-        p = stream.Progress(1000, stream=s)
+        p = Progress(1000, stream=s)
         for _ in range(10):
             p.update(100)
         p.close()
@@ -359,7 +382,8 @@ def test_importing_volsweep_does_not_import_dask():
     import subprocess
     import sys
 
-    code = ("import sys, volsweep, volsweep.cli, volsweep.stream; "
+    code = ("import sys, volsweep, volsweep.cli, volsweep.input_files, volsweep.sweep_plan, "
+            "volsweep.stream_to_parquet; "
             "assert callable(volsweep.backfill); "
             "print(sorted(m for m in ('dask', 'distributed') if m in sys.modules))")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
