@@ -162,7 +162,7 @@ def test_api_reference_headings_match_signatures():
 
 
 def test_every_parameter_is_documented():
-    shared = {_ticked(r[0])[0] for r in _table(_section("Arguments"), "argument")}
+    shared = {_ticked(r[0])[0] for r in _table(_section("Functions"), "argument")}
     fns = _public_functions()
     used = set()
     for name, fn in fns.items():
@@ -170,7 +170,7 @@ def test_every_parameter_is_documented():
         for p in inspect.signature(fn).parameters:
             used.add(p)
             assert p in shared or f"`{p}`" in text, f"{name}({p}) is not documented"
-    assert shared <= used, f"stale rows in the Arguments table: {shared - used}"
+    assert shared <= used, f"stale rows in the arguments table: {shared - used}"
 
 
 # ---------------------------------------------------------------- output columns
