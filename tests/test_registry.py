@@ -89,6 +89,8 @@ def test_model_table_matches_registry():
         assert left_out <= set(kgreeks.GREEK_NAMES), m.name
         assert tuple(g for g in kgreeks.GREEK_NAMES if g not in left_out) == m.greeks, m.name
         assert doc == m.doc, m.name
+    assert "All are European exercise." in _section("Models")
+    assert {m.exercise for m in registry.MODELS.values()} == {"european"}
 
 
 def test_input_table_names_every_known_input():
@@ -171,6 +173,11 @@ def test_every_parameter_is_documented():
             used.add(p)
             assert p in shared or f"`{p}`" in text, f"{name}({p}) is not documented"
     assert shared <= used, f"stale rows in the arguments table: {shared - used}"
+
+
+def test_prepare_cache_size_is_the_documented_one():
+    from volsweep import api
+    assert f"{api._PREPARED_MAX} entries at most" in API
 
 
 # ---------------------------------------------------------------- output columns
