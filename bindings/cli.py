@@ -243,11 +243,20 @@ def _map_args(p) -> None:
                    "the name of a column)")
 
 
+def _model_arg(p) -> None:
+    """--model: the registry's models, each with its underlying and one-line doc."""
+    from volsweep.kernel.registry import MODELS
+
+    lines = "; ".join(f"{m.name}: {m.doc}, on {m.underlying}"
+                      + "".join(f" with {x.name}" for x in m.extras) for m in MODELS.values())
+    p.add_argument("--model", default="bsm", choices=list(MODELS),
+                   help=f"{lines.replace('%', '%%')} (default: %(default)s)")
+
+
 def _sweep_args(p) -> None:
     import volsweep
 
-    p.add_argument("--model", default="bsm", choices=["bsm", "black76"],
-                   help="bsm: on spot with div_yield; black76: on forward (default: bsm)")
+    _model_arg(p)
     p.add_argument("--quotes", default="auto", choices=["auto", "premium", "bid-ask"],
                    help="which quote to invert (default: auto)")
     p.add_argument("--greeks", default="all", metavar="LIST",
@@ -284,7 +293,7 @@ def build_parser() -> argparse.ArgumentParser:
                         description="Price every row of IN (Parquet file or folder, Arrow IPC, "
                         "CSV) into the Parquet file OUT, streaming batch by batch.")
     _io_args(pr)
-    pr.add_argument("--model", default="bsm", choices=["bsm", "black76"])
+    _model_arg(pr)
     _map_args(pr)
     pr.set_defaults(func=cmd_price)
 
