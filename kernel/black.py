@@ -101,13 +101,16 @@ def _is_inf(v):
 
 
 @scalar
-def input_status(U, K, T, D, vol, cp, q):
-    """Status of one row's model inputs, in the priority order of kernel/status.py.
+def checked_status(U, K, T, D, vol, cp, q, st_u, st_k):
+    """Status of one row's model inputs, in the priority order of kernel/status.py, with
+    the model's own range checks of the underlying and the strike given as statuses
+    (``st_u``, ``st_k``: OK where the value is in the model's range).
 
-    U: the underlying (forward or spot); q: the model's extra input (the dividend yield;
-    0.0 for a model without one, a constant that folds away); vol: 0.0 where the row has
-    no vol input (implied vol).  cp = 0 (a missing call/put flag) is missing_input.  A
-    discount factor from a rate carries the rate's problems (``discount_factors``).
+    U: the underlying (forward or spot); q: the model's extra input (the dividend yield,
+    the shift; 0.0 for a model without one, a constant that folds away); vol: 0.0 where
+    the row has no vol input (implied vol).  cp = 0 (a missing call/put flag) is
+    missing_input.  A discount factor from a rate carries the rate's problems
+    (``discount_factors``).
     """
     missing = (_is_nan(U) or _is_nan(K) or _is_nan(T) or _is_nan(D) or _is_nan(vol)
                or _is_nan(q) or cp == 0)
@@ -116,11 +119,37 @@ def input_status(U, K, T, D, vol, cp, q):
     st = S.OUT_OF_RANGE if not (D > 0.0) else S.OK
     st = S.EXPIRED if not (T > 0.0) else st
     st = S.NEGATIVE_VOL if vol < 0.0 else st
-    st = S.BAD_STRIKE if not (K > 0.0) else st
-    st = S.BAD_UNDERLYING if not (U > 0.0) else st
+    st = st_k if st_k != S.OK else st
+    st = st_u if st_u != S.OK else st
     st = S.NON_FINITE_INPUT if nonfinite else st
     st = S.MISSING_INPUT if missing else st
     return st
+
+
+@scalar
+def input_status(U, K, T, D, vol, cp, q):
+    """``checked_status`` of a lognormal model: U <= 0 is bad_underlying, K <= 0
+    bad_strike."""
+    return checked_status(U, K, T, D, vol, cp, q,
+                          S.BAD_UNDERLYING if not (U > 0.0) else S.OK,
+                          S.BAD_STRIKE if not (K > 0.0) else S.OK)
+
+
+@scalar
+def shifted_inputs(F, K, T, D, sh, vol, cp):
+    """One shifted Black-76 row: (status, F + sh, K + sh).
+
+    The model of F + sh and K + sh.  With sh == 0 the statuses are Black-76's
+    (bad_underlying, bad_strike); with a nonzero shift a shifted forward or strike <= 0 is
+    shifted_not_positive.  F + 0.0 == F, so a zero shift gives Black-76's bits.
+    """
+    f = F + sh
+    k = K + sh
+    bad = S.SHIFTED_NOT_POSITIVE
+    st = checked_status(F, K, T, D, vol, cp, sh,
+                        (S.BAD_UNDERLYING if sh == 0.0 else bad) if not (f > 0.0) else S.OK,
+                        (S.BAD_STRIKE if sh == 0.0 else bad) if not (k > 0.0) else S.OK)
+    return st, f, k
 
 
 @scalar
@@ -138,13 +167,11 @@ def bsm_inputs(spot, K, T, D, q, vol, cp):
 
 
 @rows
-def _black76_price_rows(a, e, F, K, T, D, vol, cp, price, status):
+def _black76_price_rows(a, e, F, K, T, D, shift, vol, cp, price, status):
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
-        f = F[i]
-        k = K[i]
         tt = T[i]
         v = vol[i]
-        st = input_status(f, k, tt, D[i], v, cp[i], 0.0)
+        st, f, k = shifted_inputs(F[i], K[i], tt, D[i], shift[i], v, cp[i])
         s = v * math.sqrt(tt if tt > 0.0 else 0.0)
         p = black_price(f if f > 0.0 else 1.0, k if k > 0.0 else 1.0, s, D[i], float(cp[i]))
         st = S.OUT_OF_RANGE if (st == S.OK and not (abs(p) < INF)) else st  # overflow
@@ -167,11 +194,11 @@ def _bsm_price_rows(a, e, spot, K, T, D, q, vol, cp, price, status):
 
 
 @loop
-def _black76_price_par(F, K, T, D, vol, cp, price, status):
+def _black76_price_par(F, K, T, D, shift, vol, cp, price, status):
     n = F.shape[0]
     for b in prange((n + BLOCK - 1) // BLOCK):
-        _black76_price_rows(b * BLOCK, min(n, (b + 1) * BLOCK), F, K, T, D, vol, cp, price,
-                            status)
+        _black76_price_rows(b * BLOCK, min(n, (b + 1) * BLOCK), F, K, T, D, shift, vol, cp,
+                            price, status)
 
 
 @loop
@@ -182,19 +209,22 @@ def _bsm_price_par(spot, K, T, D, q, vol, cp, price, status):
                         status)
 
 
-def black76_price(F, K, T, D, vol, cp, price, status):
-    """Black-76 prices of options on forwards F into ``price``, with a ``status`` per row.
+def black76_price(F, K, T, D, shift, vol, cp, price, status):
+    """(Shifted) Black-76 prices of options on forwards F into ``price``, with a ``status``
+    per row: the Black-76 price of F + shift and K + shift (shift 0: plain Black-76).
 
-    F, K, T (years), D (discount factor), vol: float64 arrays of one length n; cp: integer
-    codes, +1 call, -1 put, 0 missing; price (float64) and status (int8): preallocated.
-    A price that is not a finite double (overflow) gets status out_of_range and NaN.
+    F, K, T (years), D (discount factor), shift, vol: float64 arrays of one length n; cp:
+    integer codes, +1 call, -1 put, 0 missing; price (float64) and status (int8):
+    preallocated.  A price that is not a finite double (overflow) gets status out_of_range
+    and NaN.
     """
-    F, K, T, D, vol = _args.floats(F, K, T, D, vol)
+    F, K, T, D, shift, vol = _args.floats(F, K, T, D, shift, vol)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("price", price, (n,), np.float64)
     _args.output("status", status, (n,), np.int8)
-    _args.run(_black76_price_rows, _black76_price_par, n, F, K, T, D, vol, cp, price, status)
+    _args.run(_black76_price_rows, _black76_price_par, n, F, K, T, D, shift, vol, cp, price,
+              status)
 
 
 def bsm_price(spot, K, T, D, q, vol, cp, price, status):

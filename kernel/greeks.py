@@ -97,7 +97,7 @@ from . import status as S
 from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar, specialise
-from .black import bsm_inputs, input_status, otm_value
+from .black import bsm_inputs, otm_value, shifted_inputs
 from .special import INF, INV_SQRT2PI, NAN, SQRT1_2, SQRT_PI_2, erfcx_pos, exp, log
 
 # Phi(-|z|) = sqrt(pi/2) erfcx(|z|/sqrt2) phi(z)
@@ -281,14 +281,12 @@ llvm.set_option("volsweep", f"-vectorize-memory-check-threshold={_MEMORY_CHECKS}
 
 
 @scalar
-def _b76_row(F, K, T, D, vol, cp, i):
-    # status of row i and its inputs (harmless placeholders where the status is not ok)
-    f = F[i]
-    k = K[i]
+def _b76_row(F, K, T, D, shift, vol, cp, i):
+    # status of row i and its (shifted) inputs (harmless placeholders where not ok)
     tt = T[i]
     d = D[i]
     v = vol[i]
-    st = input_status(f, k, tt, d, v, cp[i], 0.0)
+    st, f, k = shifted_inputs(F[i], K[i], tt, d, shift[i], v, cp[i])
     ok = st == S.OK
     return (st, f if ok else 1.0, k if ok else 1.0, tt if ok else 1.0, d if ok else 1.0,
             v if ok else 0.2, float(cp[i]))
@@ -378,11 +376,11 @@ def _slots(mask):
     return tuple(slots), j
 
 
-# Templates of the per-mask loops; ``_kernel`` copies them per mask with SLOTS (the
+# Templates of the per-mask loops; ``mask_loops`` copies them per mask with SLOTS (the
 # output row of each Greek, -1 if not requested) and the row loop ROWS as frozen globals.
-def _b76_rows_template(a, e, F, K, T, D, vol, cp, out, status):
+def _b76_rows_template(a, e, F, K, T, D, shift, vol, cp, out, status):
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
-        st, f, k, tt, d, v, cp_i = _b76_row(F, K, T, D, vol, cp, i)
+        st, f, k, tt, d, v, cp_i = _b76_row(F, K, T, D, shift, vol, cp, i)
         g = greeks_forward(f, k, tt, d, v, cp_i)
         flag = _store(out, i, g, st == S.OK, SLOTS)  # noqa: F821 (a global of each copy)
         status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
@@ -396,33 +394,37 @@ def _bsm_rows_template(a, e, spot, K, T, D, q, vol, cp, out, status):
         status[i] = st + (S.NONFINITE_GREEK_FLAG if flag else 0)
 
 
-def _b76_par_template(F, K, T, D, vol, cp, out, status):
-    n = F.shape[0]
+# The parallel loops, by the model's number of extra inputs (the registry's convention).
+def par_template0(U, K, T, D, vol, cp, out, status):
+    n = U.shape[0]
     for b in prange((n + BLOCK - 1) // BLOCK):
-        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), F, K, T, D, vol, cp, out, status)  # noqa: F821
+        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), U, K, T, D, vol, cp, out, status)  # noqa: F821
 
 
-def _bsm_par_template(spot, K, T, D, q, vol, cp, out, status):
-    n = spot.shape[0]
+def par_template1(U, K, T, D, X, vol, cp, out, status):
+    n = U.shape[0]
     for b in prange((n + BLOCK - 1) // BLOCK):
-        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), spot, K, T, D, q, vol, cp, out,  # noqa: F821
+        ROWS(b * BLOCK, min(n, (b + 1) * BLOCK), U, K, T, D, X, vol, cp, out,  # noqa: F821
              status)
 
 
-_TEMPLATES = {"black76": (_b76_rows_template, _b76_par_template),
-              "bsm": (_bsm_rows_template, _bsm_par_template)}
+_TEMPLATES = {"black76": (_b76_rows_template, par_template1),
+              "bsm": (_bsm_rows_template, par_template1)}
 
 
 @functools.lru_cache(maxsize=None)
-def _kernel(model, mask):
-    """(row loop, parallel loop) specialised to one model and one mask, compiled on first use
-    (kernel/sweep.py calls the row loop per block)."""
+def mask_loops(rows_template, par_template, model, mask):
+    """(row loop, parallel loop) of a model's templates specialised to one mask, compiled
+    on first use (kernel/sweep.py and kernel/quotes.py call the row loop per block)."""
     sl, _ = _slots(mask)
-    rows_t, par_t = _TEMPLATES[model]
     tag = f"{model}_greeks_{mask:04x}"
-    row_loop = rows(specialise(rows_t, f"rows_{tag}", SLOTS=sl), interleave=0)  # see _jit
-    par_loop = loop(specialise(par_t, f"par_{tag}", ROWS=row_loop))
+    row_loop = rows(specialise(rows_template, f"rows_{tag}", SLOTS=sl), interleave=0)  # _jit
+    par_loop = loop(specialise(par_template, f"par_{tag}", ROWS=row_loop))
     return row_loop, par_loop
+
+
+def _kernel(model, mask):
+    return mask_loops(*_TEMPLATES[model], model, mask)
 
 
 def take_nonfinite_flags(status) -> int:
@@ -441,21 +443,22 @@ def _check_mask(mask):
     return mask, bin(mask).count("1")
 
 
-def black76_greeks(F, K, T, D, vol, cp, mask, out, status):
-    """Black-76 Greeks of the rows into ``out[n_requested, n]`` and their ``status``.
+def black76_greeks(F, K, T, D, shift, vol, cp, mask, out, status):
+    """(Shifted) Black-76 Greeks of the rows into ``out[n_requested, n]`` and their
+    ``status``: those of Black-76 at F + shift and K + shift (derivatives against F).
 
-    F, K, T, D, vol: float64 arrays; cp: int8 (+1 call, -1 put, 0 missing); mask from
-    ``greek_mask``.  Rows whose status is not ok get NaN Greeks.  Returns the number of
+    F, K, T, D, shift, vol: float64 arrays; cp: int8 (+1 call, -1 put, 0 missing); mask
+    from ``greek_mask``.  Rows whose status is not ok get NaN Greeks.  Returns the number of
     ok rows with a requested Greek that is not finite (the documented infinite limits;
     0 for ordinary inputs), so a caller can skip checking the outputs when it is 0.
     """
     mask, nsel = _check_mask(mask)
-    F, K, T, D, vol = _args.floats(F, K, T, D, vol)
+    F, K, T, D, shift, vol = _args.floats(F, K, T, D, shift, vol)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("out", out, (nsel, n), np.float64)
     _args.output("status", status, (n,), np.int8)
-    _args.run(*_kernel("black76", mask), n, F, K, T, D, vol, cp, out, status)
+    _args.run(*_kernel("black76", mask), n, F, K, T, D, shift, vol, cp, out, status)
     return take_nonfinite_flags(status)
 
 

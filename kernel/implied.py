@@ -55,7 +55,7 @@ from . import status as S
 from ._intrinsics import fma
 from . import _args
 from ._jit import BLOCK, loop, rows, scalar
-from .black import _is_inf, _is_nan, bsm_inputs, input_status
+from .black import _is_inf, _is_nan, bsm_inputs, shifted_inputs
 from .special import (INF, INV_SQRT2PI, LN2, NAN, SQRT1_2, SQRT2PI, erfcx_pos,
                       erfcx_pos_approx, erfcx_pos_approx_parts, exp_approx, log, log_approx)
 
@@ -113,6 +113,36 @@ def log_moneyness(F, K):
 
 
 @scalar
+def _time_value_parts(P, U, V, D):
+    """(tv, small, q, 1/D): tv = P/D - max(U - V, 0) as the correctly rounded time value of
+    the double inputs, times 2^200 where P < 2^-800 (small); q = P/D (scaled alike)."""
+    small = P < _TINY_P
+    scale = _UP if small else 1.0
+    Ps = P * scale
+    # P/D = q + qlo exactly up to the rounding of qlo (the remainder is exact)
+    # the remainder Ps - q D is exact for any q within an ulp of the quotient
+    invD = 1.0 / D
+    q = Ps * invD
+    qlo = fma(-q, D, Ps) * invD
+    itm = U > V
+    d, de = _two_diff(U, V)
+    d = d * scale if itm else 0.0
+    de = de * scale if itm else 0.0
+    t, et = _two_diff(q, d)
+    tv = t + ((et + qlo) - de)
+    return tv, small, q, invD
+
+
+@scalar
+def exact_time_value(P, U, V, D):
+    """(tv, small): the time value P/D - max(U - V, 0) of a premium P, U - V the intrinsic
+    value's difference (F - K for a call, K - F for a put), correctly rounded from the
+    double inputs (error-free transformations), times 2^200 where P < 2^-800 (small)."""
+    tv, small, _, _ = _time_value_parts(P, U, V, D)
+    return tv, small
+
+
+@scalar
 def normalised_time_value(P, F, K, D, cp):
     """The premium as the solver sees it: (r, rs, lsc, c, status).
 
@@ -128,20 +158,7 @@ def normalised_time_value(P, F, K, D, cp):
     U = F if call else K
     V = K if call else F
     A = min(F, K)
-    small = P < _TINY_P
-    scale = _UP if small else 1.0
-    Ps = P * scale
-    # P/D = q + qlo exactly up to the rounding of qlo (the remainder is exact)
-    # the remainder Ps - q D is exact for any q within an ulp of the quotient
-    invD = 1.0 / D
-    q = Ps * invD
-    qlo = fma(-q, D, Ps) * invD
-    itm = U > V
-    d, de = _two_diff(U, V)
-    d = d * scale if itm else 0.0
-    de = de * scale if itm else 0.0
-    t, et = _two_diff(q, d)
-    tv = t + ((et + qlo) - de)
+    tv, small, q, invD = _time_value_parts(P, U, V, D)
     invA = 1.0 / A
     rs = tv * invA
     lsc = _LN_UP if small else 0.0
@@ -299,13 +316,11 @@ def black_total_vol(P, F, K, D, cp):
 
 
 @rows
-def _black76_iv_rows(a, e, premium, F, K, T, D, cp, iv_out, status_out):
+def _black76_iv_rows(a, e, premium, F, K, T, D, shift, cp, iv_out, status_out):
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
-        f = F[i]
-        k = K[i]
         tt = T[i]
         dd = D[i]
-        st = input_status(f, k, tt, dd, 0.0, cp[i], 0.0)
+        st, f, k = shifted_inputs(F[i], K[i], tt, dd, shift[i], 0.0, cp[i])
         ok = st == S.OK
         s, st2 = black_total_vol(premium[i], f if ok else 1.0, k if ok else 1.0,
                                  dd if ok else 1.0, float(cp[i]) if ok else 1.0)
@@ -333,11 +348,11 @@ def _bsm_iv_rows(a, e, premium, spot, K, T, D, q, cp, iv_out, status_out):
 
 
 @loop
-def _black76_iv_par(premium, F, K, T, D, cp, iv_out, status_out):
+def _black76_iv_par(premium, F, K, T, D, shift, cp, iv_out, status_out):
     n = F.shape[0]
     for b in prange((n + BLOCK - 1) // BLOCK):
-        _black76_iv_rows(b * BLOCK, min(n, (b + 1) * BLOCK), premium, F, K, T, D, cp, iv_out,
-                         status_out)
+        _black76_iv_rows(b * BLOCK, min(n, (b + 1) * BLOCK), premium, F, K, T, D, shift, cp,
+                         iv_out, status_out)
 
 
 @loop
@@ -348,18 +363,19 @@ def _bsm_iv_par(premium, spot, K, T, D, q, cp, iv_out, status_out):
                      iv_out, status_out)
 
 
-def black76_iv(premium, F, K, T, D, cp, iv_out, status_out):
-    """Black-76 implied vols of premiums on forwards F; cp = +1 call, -1 put, 0 missing.
+def black76_iv(premium, F, K, T, D, shift, cp, iv_out, status_out):
+    """(Shifted) Black-76 implied vols of premiums on forwards F: the lognormal vol of
+    F + shift and K + shift (shift 0: plain Black-76); cp = +1 call, -1 put, 0 missing.
 
     Inputs: float64 arrays of one length n (cp integer codes); outputs preallocated:
     iv_out float64 (NaN where the status is not ok) and status_out int8.
     """
-    premium, F, K, T, D = _args.floats(premium, F, K, T, D)
+    premium, F, K, T, D, shift = _args.floats(premium, F, K, T, D, shift)
     n = F.shape[0]
     cp = _args.codes(n, cp)
     _args.output("iv_out", iv_out, (n,), np.float64)
     _args.output("status_out", status_out, (n,), np.int8)
-    _args.run(_black76_iv_rows, _black76_iv_par, n, premium, F, K, T, D, cp, iv_out,
+    _args.run(_black76_iv_rows, _black76_iv_par, n, premium, F, K, T, D, shift, cp, iv_out,
               status_out)
 
 

@@ -56,45 +56,46 @@ def _quote_rows(a, e, bid, ask, iv_bid, iv_ask, iv, st_bid, st_ask, st, vega, un
         unc[i] = half / vega[i] if sm == S.OK else NAN
 
 
-# Templates of the per-mask loops, copied per model and mask with the Greeks row loop
-# GREEKS and the output row VEGA_ROW of vega as frozen globals (see _jit.specialise).
-def _b76_template(bid, ask, mid, F, K, T, D, cp, iv_bid, iv_ask, iv, unc, out, st_bid,
-                  st_ask, status, scratch):
-    n = F.shape[0]
+# Templates of the per-mask loops, by the model's number of extra inputs (the registry's
+# calling convention), copied per model and mask with its implied-vol row loop IV, its
+# Greeks row loop GREEKS and the output row VEGA_ROW of vega as frozen globals (see
+# _jit.specialise).
+def _template0(bid, ask, mid, U, K, T, D, cp, iv_bid, iv_ask, iv, unc, out, st_bid,
+               st_ask, status, scratch):
+    n = U.shape[0]
     for blk in prange((n + BLOCK - 1) // BLOCK):
         a = blk * BLOCK
         e = min(n, a + BLOCK)
-        _implied._black76_iv_rows(a, e, bid, F, K, T, D, cp, iv_bid, st_bid)
-        _implied._black76_iv_rows(a, e, ask, F, K, T, D, cp, iv_ask, st_ask)
-        _implied._black76_iv_rows(a, e, mid, F, K, T, D, cp, iv, status)
-        GREEKS(a, e, F, K, T, D, iv, cp, out, scratch)  # noqa: F821
+        IV(a, e, bid, U, K, T, D, cp, iv_bid, st_bid)  # noqa: F821
+        IV(a, e, ask, U, K, T, D, cp, iv_ask, st_ask)  # noqa: F821
+        IV(a, e, mid, U, K, T, D, cp, iv, status)  # noqa: F821
+        GREEKS(a, e, U, K, T, D, iv, cp, out, scratch)  # noqa: F821
         _quote_rows(a, e, bid, ask, iv_bid, iv_ask, iv, st_bid, st_ask, status,
                     out[VEGA_ROW], unc)  # noqa: F821
 
 
-def _bsm_template(bid, ask, mid, spot, K, T, D, q, cp, iv_bid, iv_ask, iv, unc, out, st_bid,
-                  st_ask, status, scratch):
-    n = spot.shape[0]
+def _template1(bid, ask, mid, U, K, T, D, X, cp, iv_bid, iv_ask, iv, unc, out, st_bid,
+               st_ask, status, scratch):
+    n = U.shape[0]
     for blk in prange((n + BLOCK - 1) // BLOCK):
         a = blk * BLOCK
         e = min(n, a + BLOCK)
-        _implied._bsm_iv_rows(a, e, bid, spot, K, T, D, q, cp, iv_bid, st_bid)
-        _implied._bsm_iv_rows(a, e, ask, spot, K, T, D, q, cp, iv_ask, st_ask)
-        _implied._bsm_iv_rows(a, e, mid, spot, K, T, D, q, cp, iv, status)
-        GREEKS(a, e, spot, K, T, D, q, iv, cp, out, scratch)  # noqa: F821
+        IV(a, e, bid, U, K, T, D, X, cp, iv_bid, st_bid)  # noqa: F821
+        IV(a, e, ask, U, K, T, D, X, cp, iv_ask, st_ask)  # noqa: F821
+        IV(a, e, mid, U, K, T, D, X, cp, iv, status)  # noqa: F821
+        GREEKS(a, e, U, K, T, D, X, iv, cp, out, scratch)  # noqa: F821
         _quote_rows(a, e, bid, ask, iv_bid, iv_ask, iv, st_bid, st_ask, status,
                     out[VEGA_ROW], unc)  # noqa: F821
 
 
-_TEMPLATES = {"black76": _b76_template, "bsm": _bsm_template}
+_TEMPLATES = (_template0, _template1)
 
 
 @functools.lru_cache(maxsize=None)
-def _kernel(model, mask):
-    greek_rows, _ = _greeks._kernel(model, mask)
+def _kernel(iv_rows, greek_rows, n_extras, model, mask):
     vega_row = bin(mask & (_VEGA - 1)).count("1")
-    return loop(specialise(_TEMPLATES[model], f"bid_ask_{model}_{mask:04x}", GREEKS=greek_rows,
-                           VEGA_ROW=vega_row))
+    return loop(specialise(_TEMPLATES[n_extras], f"bid_ask_{model}_{mask:04x}", IV=iv_rows,
+                           GREEKS=greek_rows, VEGA_ROW=vega_row))
 
 
 def mid_price(bid, ask):
@@ -107,10 +108,12 @@ def mid_price(bid, ask):
     return mid
 
 
-def _run(model, bid, ask, inputs, cp, mask, outs):
-    """inputs: (U, K, T, D, *extras) as the model's kernels take them."""
+def run(model, iv_rows, greek_loops, bid, ask, inputs, cp, mask, outs):
+    """inputs: (U, K, T, D, *extras) as the model's kernels take them (read-only float64
+    views); greek_loops(mask): the model's Greeks (row loop, parallel loop) for a mask."""
     iv_bid, iv_ask, iv, unc, out, st_bid, st_ask, status = outs
     n = inputs[0].shape[0]
+    cp = _args.codes(n, cp)
     mask, nsel = _greeks._check_mask(mask)
     if not mask & _VEGA:
         raise ValueError("the bid/ask kernel's mask must hold vega (the spread's vol "
@@ -122,30 +125,31 @@ def _run(model, bid, ask, inputs, cp, mask, outs):
         _args.output(name, arr, (n,), np.int8)
     (mid,) = _args.floats(mid_price(bid, ask))
     scratch = np.empty(n, np.int8)     # the Greeks' own statuses (the iv's take priority)
-    _kernel(model, mask)(bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out,
-                         st_bid, st_ask, status, scratch)
+    _kernel(iv_rows, greek_loops(mask)[0], len(inputs) - 4, model, mask)(
+        bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out, st_bid, st_ask, status,
+        scratch)
     return _greeks.take_nonfinite_flags(scratch)
 
 
-def black76_bid_ask(bid, ask, F, K, T, D, cp, mask, iv_bid, iv_ask, iv, unc, out,
+def black76_bid_ask(bid, ask, F, K, T, D, shift, cp, mask, iv_bid, iv_ask, iv, unc, out,
                     status_bid, status_ask, status):
-    """Black-76 implied vols of bid, ask and mid, the Greeks in ``mask`` at the mid vol
-    (``mask`` must hold vega), and unc = half-spread / vega, in one pass.
+    """(Shifted) Black-76 implied vols of bid, ask and mid, the Greeks in ``mask`` at the
+    mid vol (``mask`` must hold vega), and unc = half-spread / vega, in one pass.
 
     Inputs: float64 arrays of one length n, cp int8 (+1 call, -1 put, 0 missing); outputs
     preallocated: iv_bid, iv_ask, iv, unc float64 (n,), out float64 (n_greeks, n), three
     int8 statuses.  Returns the number of rows with a mid vol and a non-finite Greek.
     """
-    bid, ask, F, K, T, D = _args.floats(bid, ask, F, K, T, D)
-    cp = _args.codes(F.shape[0], cp)
-    return _run("black76", bid, ask, (F, K, T, D), cp, mask,
-                (iv_bid, iv_ask, iv, unc, out, status_bid, status_ask, status))
+    bid, ask, F, K, T, D, shift = _args.floats(bid, ask, F, K, T, D, shift)
+    return run("black76", _implied._black76_iv_rows,
+               lambda m: _greeks._kernel("black76", m), bid, ask, (F, K, T, D, shift), cp,
+               mask, (iv_bid, iv_ask, iv, unc, out, status_bid, status_ask, status))
 
 
 def bsm_bid_ask(bid, ask, spot, K, T, D, q, cp, mask, iv_bid, iv_ask, iv, unc, out,
                 status_bid, status_ask, status):
     """BSM (spot, continuous yield q) version of ``black76_bid_ask``."""
     bid, ask, spot, K, T, D, q = _args.floats(bid, ask, spot, K, T, D, q)
-    cp = _args.codes(spot.shape[0], cp)
-    return _run("bsm", bid, ask, (spot, K, T, D, q), cp, mask,
-                (iv_bid, iv_ask, iv, unc, out, status_bid, status_ask, status))
+    return run("bsm", _implied._bsm_iv_rows, lambda m: _greeks._kernel("bsm", m), bid, ask,
+               (spot, K, T, D, q), cp, mask,
+               (iv_bid, iv_ask, iv, unc, out, status_bid, status_ask, status))

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from . import bachelier as _bachelier
 from . import black as _black
 from . import greeks as _greeks
 from . import implied as _implied
@@ -70,6 +71,8 @@ def _all_but(*names):
 
 
 _DIV_YIELD = Input("div_yield", 0.0, "continuous dividend yield / borrow, per year")
+_SHIFT = Input("shift", 0.0, "displacement of shifted Black-76, priced as the lognormal "
+                             "model of forward + shift and strike + shift")
 
 MODELS = {
     "bsm": Model(
@@ -85,13 +88,25 @@ MODELS = {
     ),
     "black76": Model(
         name="black76",
-        doc="Black-76: European options on a forward or futures price (lognormal)",
+        doc="Black-76: European options on a forward or futures price (lognormal, "
+            "optionally shifted)",
         underlying="forward",
-        extras=(),
+        extras=(_SHIFT,),
         greeks=_all_but("div_rho"),
         kernels={"price": _black.black76_price, "implied_vol": _implied.black76_iv,
                  "greeks": _greeks.black76_greeks, "sweep": _sweep.black76_sweep,
                  "bid_ask": _quotes.black76_bid_ask},
+    ),
+    "bachelier": Model(
+        name="bachelier",
+        doc="Bachelier: European options on a forward or futures price of any sign "
+            "(normal model; vol in price units per year^1/2)",
+        underlying="forward",
+        extras=(),
+        greeks=_all_but("div_rho"),
+        kernels={"price": _bachelier.price, "implied_vol": _bachelier.implied_vol,
+                 "greeks": _bachelier.greeks, "sweep": _bachelier.sweep,
+                 "bid_ask": _bachelier.bid_ask},
     ),
 }
 

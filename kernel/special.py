@@ -75,8 +75,8 @@ _E2, _E3, _E4, _E5, _E6, _E7, _E8, _E9, _E10, _E11, _E12, _E13 = (
 
 
 @scalar
-def _exp_raw(x):
-    """e**x for x already clamped to [-746, 710] (or NaN)."""
+def _exp_parts(x):
+    """(e, s1, s2) with e**x = (e * s1) * s2, for x already clamped to [-746, 710]."""
     t = fma(x, _LOG2E, _SHIFT)
     n = t - _SHIFT
     ni = f64_as_i64(t) - _SHIFT_BITS
@@ -101,7 +101,24 @@ def _exp_raw(x):
     n2 = ni - n1
     s1 = i64_as_f64((n1 + 1023) << 52)
     s2 = i64_as_f64((n2 + 1023) << 52)
+    return e, s1, s2
+
+
+@scalar
+def _exp_raw(x):
+    """e**x for x already clamped to [-746, 710] (or NaN)."""
+    e, s1, s2 = _exp_parts(x)
     return (e * s1) * s2
+
+
+@scalar
+def exp_mul(x, m):
+    """m e**x for x in [-745, 0] and m > 0 (NaN -> NaN), rounded into the subnormals once:
+    e**x below 2**-1022 loses digits, m e**x need not (m >= 1 large enough).  The second
+    power-of-two factor of e**x is applied last; <= 1.5 ulp while the result is normal."""
+    xc = _EXP_ARG_MIN if x < _EXP_ARG_MIN else x
+    e, s1, s2 = _exp_parts(xc)
+    return ((e * s1) * m) * s2
 
 
 @scalar

@@ -6,10 +6,12 @@ append new ones, never renumber.  The README documents each name.
 Every status is decided here and in the kernels' row loops, once; nothing re-ranks it
 afterwards.  Priority, highest first (a row gets the first that applies):
 
-1. input problems, in code order: ``missing_input`` (any required input NaN/null, the
+1. input problems, in this order: ``missing_input`` (any required input NaN/null, the
    call/put flag included), ``non_finite_input`` (any required input +-inf, the discount
    factor and the extra inputs of a model included), then the range checks
-   ``bad_underlying``, ``bad_strike``, ``negative_vol``, ``expired``, ``out_of_range``;
+   ``bad_underlying``, ``bad_strike``, ``shifted_not_positive``, ``negative_vol``,
+   ``expired``, ``out_of_range`` (code order, except the appended
+   ``shifted_not_positive``, which ranks with the other checks of forward and strike);
    The premium of a side counts among that side's inputs: a null/NaN or +-inf premium
    (bid, ask or mid) is ``missing_input`` / ``non_finite_input`` on that side, and an
    implied vol that is not a finite double is ``out_of_range``;
@@ -42,6 +44,8 @@ ABOVE_UPPER_BOUND = 9  # premium at or above the no-arbitrage upper bound
 NO_TIME_VALUE = 10     # time value not resolvable in double precision (premium == intrinsic)
 CROSSED_QUOTE = 11     # bid > ask
 ZERO_BID = 12          # bid <= 0 (that side has no vol)
+SHIFTED_NOT_POSITIVE = 13  # shifted Black-76 with a nonzero shift: forward + shift or
+#                            strike + shift <= 0 (with shift 0: bad_underlying / bad_strike)
 
 NAMES = (
     "ok",
@@ -57,12 +61,14 @@ NAMES = (
     "no_time_value",
     "crossed_quote",
     "zero_bid",
+    "shifted_not_positive",
 )
 
 # The input problems, as a bit set over the codes (``(INPUT_PROBLEMS >> code) & 1``: a
 # branch-free test inside the loops).  A new input problem appends a code and a bit here.
 INPUT_PROBLEMS = sum(1 << c for c in (MISSING_INPUT, NON_FINITE_INPUT, BAD_UNDERLYING,
-                                      BAD_STRIKE, NEGATIVE_VOL, EXPIRED, OUT_OF_RANGE))
+                                      BAD_STRIKE, NEGATIVE_VOL, EXPIRED, OUT_OF_RANGE,
+                                      SHIFTED_NOT_POSITIVE))
 
 STATUS_DTYPE = np.int8
 

@@ -27,24 +27,31 @@ def erfcx(y):
     return mp.erfc(y) * mp.exp(y * y)
 
 
-def fit(m=DEG, n=NODES, iterations=ITERATIONS, hi=mp.mpf(400)):
+def fit(m=DEG, n=NODES, iterations=ITERATIONS, hi=mp.mpf(400), target=erfcx, extra=1):
+    """P (degree m) and Q (degree m + extra, Q(0) = 1) with P/Q ~ target on [0, hi]."""
     tmax = hi / (hi + 2)
     ts = [tmax / 2 + tmax / 2 * mp.cos(mp.pi * (k + mp.mpf(1) / 2) / n) for k in range(n)]
     ys = [2 * t / (1 - t) for t in ts]
-    fs = [erfcx(y) for y in ys]
+    return fit_points(ys, [target(y) for y in ys], m, extra, iterations)
+
+
+def fit_points(ys, fs, m, extra=1, iterations=ITERATIONS):
+    """Loeb's re-weighted linearised least squares for the relative error of P/Q at the
+    points (ys, fs): P of degree m, Q of degree m + extra with Q(0) = 1."""
+    n = len(ys)
     w = [mp.mpf(1)] * n
     for _ in range(iterations):
-        a = mp.matrix(n, 2 * m + 2)
+        a = mp.matrix(n, 2 * m + 1 + extra)
         b = mp.matrix(n, 1)
         for i, (y, f) in enumerate(zip(ys, fs)):
             for j in range(m + 1):
                 a[i, j] = y ** j * w[i] / f
-            for j in range(1, m + 2):
+            for j in range(1, m + 1 + extra):
                 a[i, m + j] = -y ** j * w[i]
             b[i] = w[i]
         sol = mp.qr_solve(a, b)[0]
         p = [sol[j] for j in range(m + 1)]
-        q = [mp.mpf(1)] + [sol[m + j] for j in range(1, m + 2)]
+        q = [mp.mpf(1)] + [sol[m + j] for j in range(1, m + 1 + extra)]
         w = [1 / abs(sum(c * y ** j for j, c in enumerate(q))) for y in ys]
     return p, q
 

@@ -35,7 +35,7 @@ def b76(F, K, T, D, vol, cp):
     cp = np.array(np.broadcast_to(cp, F.shape), dtype=np.int8)
     price = np.empty(F.shape)
     st = np.empty(F.shape, dtype=np.int8)
-    black.black76_price(F, K, T, D, vol, cp, price, st)
+    black.black76_price(F, K, T, D, np.zeros(F.shape), vol, cp, price, st)
     return price, st
 
 
@@ -498,7 +498,8 @@ def test_batch_size_and_slices_do_not_change_results(table):
             sl = slice(start, start + n)
             out = np.empty(n)
             ost = np.empty(n, dtype=np.int8)
-            black.black76_price(*(c[sl] for c in cols), out, ost)  # views, not copies
+            F_, K_, T_, D_, vol_, cp_ = (c[sl] for c in cols)        # views, not copies
+            black.black76_price(F_, K_, T_, D_, np.zeros(n), vol_, cp_, out, ost)
             assert np.array_equal(_bits(out), _bits(full[sl])), (start, n)
             assert np.array_equal(ost, st[sl]), (start, n)
 
@@ -510,7 +511,7 @@ def test_overflowing_price_is_out_of_range_not_inf():
     F, K, T, D, vol = (np.array([v, v]) for v in (100.0, big, 1.0, 1.5, 0.2))
     K[1] = 90.0                                   # an ordinary row beside it
     price, st = np.empty(2), np.empty(2, np.int8)
-    black.black76_price(F, K, T, D, vol, np.array([-1, -1], np.int8), price, st)
+    black.black76_price(F, K, T, D, np.zeros(2), vol, np.array([-1, -1], np.int8), price, st)
     assert st[0] == S.OUT_OF_RANGE and np.isnan(price[0])
     assert st[1] == S.OK and np.isfinite(price[1])
 

@@ -50,7 +50,7 @@ def run_b76(F, K, T, D, vol, cp, which=None):
     mask = B76_ALL if which is None else G.greek_mask(which, "black76")
     out = np.empty((bin(mask).count("1"), F.shape[0]))
     st = np.empty(F.shape[0], dtype=np.int8)
-    G.black76_greeks(F, K, T, D, vol, cp, mask, out, st)
+    G.black76_greeks(F, K, T, D, np.zeros(F.shape), vol, cp, mask, out, st)
     return dict(zip(G.greek_names(mask), out)), st
 
 
@@ -505,7 +505,7 @@ def test_status_matches_the_price_kernel_and_bad_rows_get_nan(model):
     if model == "bsm":
         black.bsm_price(*rows, price, pst)
     else:
-        black.black76_price(*(rows[i] for i in (0, 1, 2, 3, 5, 6)), price, pst)
+        black.black76_price(*rows[:4], np.zeros(n), rows[5], rows[6], price, pst)
     assert np.array_equal(st, pst)
     assert (st != S.OK).sum() >= len(bad) - 2
     for name, v in got.items():
@@ -587,13 +587,13 @@ def test_out_and_status_are_checked_before_the_loop_runs():
     cp = np.ones(4, np.int8)
     st = np.empty(4, np.int8)
     with pytest.raises(ValueError, match="shape"):
-        G.black76_greeks(F, F, F, F, F, cp, B76_ALL, np.empty((16, 4)), st)
+        G.black76_greeks(F, F, F, F, 0 * F, F, cp, B76_ALL, np.empty((16, 4)), st)
     with pytest.raises(ValueError, match="shape"):
         G.bsm_greeks(F, F, F, F, F, F, cp, BSM_ALL, np.empty((16, 4)).T.copy().T, st)
     with pytest.raises(ValueError, match="status"):
-        G.black76_greeks(F, F, F, F, F, cp, B76_ALL, np.empty((15, 4)), np.empty(4))
+        G.black76_greeks(F, F, F, F, 0 * F, F, cp, B76_ALL, np.empty((15, 4)), np.empty(4))
     with pytest.raises(ValueError, match="mask"):
-        G.black76_greeks(F, F, F, F, F, cp, 1 << 16, np.empty((1, 4)), st)
+        G.black76_greeks(F, F, F, F, 0 * F, F, cp, 1 << 16, np.empty((1, 4)), st)
 
 
 @pytest.mark.parametrize("model", ["black76", "bsm"])
@@ -675,7 +675,7 @@ def test_entry_points_count_ok_rows_with_a_non_finite_greek():
         if model == "bsm":
             n_bad = G.bsm_greeks(U, K, T, D, q, vol, cp, m, out, st)
         else:
-            n_bad = G.black76_greeks(U, K, T, D, vol, cp, m, out, st)
+            n_bad = G.black76_greeks(U, K, T, D, 0 * q, vol, cp, m, out, st)
         assert n_bad == 1 and list(st) == [S.OK] * 3          # flag cleared, row ok
         assert np.isinf(out[1, 0]) and np.all(np.isfinite(out[:, 1:]))   # gamma at the strike
         m = G.greek_mask(FEW, model)                            # delta and vega stay finite
@@ -683,4 +683,4 @@ def test_entry_points_count_ok_rows_with_a_non_finite_greek():
         if model == "bsm":
             assert G.bsm_greeks(U, K, T, D, q, vol, cp, m, out2, st) == 0
         else:
-            assert G.black76_greeks(U, K, T, D, vol, cp, m, out2, st) == 0
+            assert G.black76_greeks(U, K, T, D, 0 * q, vol, cp, m, out2, st) == 0

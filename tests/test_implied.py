@@ -45,7 +45,7 @@ def iv76(premium, F, K, T, D, cp):
     cp = np.ascontiguousarray(np.broadcast_to(np.asarray(cp, dtype=np.int8), F.shape))
     iv = np.empty(F.shape)
     stt = np.empty(F.shape, dtype=np.int8)
-    implied.black76_iv(premium, F, K, T, D, cp, iv, stt)
+    implied.black76_iv(premium, F, K, T, D, np.zeros(F.shape), cp, iv, stt)
     return iv, stt
 
 
@@ -63,7 +63,7 @@ def price76(F, K, T, D, vol, cp):
     cp = np.ascontiguousarray(np.broadcast_to(np.asarray(cp, dtype=np.int8), F.shape))
     p = np.empty(F.shape)
     stt = np.empty(F.shape, dtype=np.int8)
-    black.black76_price(F, K, T, D, vol, cp, p, stt)
+    black.black76_price(F, K, T, D, np.zeros(F.shape), vol, cp, p, stt)
     return p, stt
 
 
