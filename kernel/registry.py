@@ -54,6 +54,8 @@ class Model:
     greeks: tuple                  # the Greeks it defines, in GREEK_NAMES order
     kernels: dict = field(repr=False)   # operation -> kernel entry point (see above)
     exercise: str = "european"
+    units: dict = field(default_factory=dict)  # Greek -> (raw, desk) unit where it differs
+    #                                            from GREEKS (e.g. a normal vol's)
 
 
 @dataclass(frozen=True)
@@ -64,6 +66,45 @@ class Operation:
     needs: str                     # "vol" (a vol column) or "quote" (premium, or bid and ask)
     outputs: tuple                 # output columns (symbolic: "<greeks>", "<iv>")
     doc: str
+
+
+# What each Greek is, and its units: raw (the analytic derivative) and desk (raw times
+# greeks.DESK_SCALE).  "underlying" is the model's underlying input (spot or forward).
+GREEKS = {
+    "delta": ("dV/dU", "per 1 of underlying", "per 1 of underlying"),
+    "gamma": ("d2V/dU2", "per 1 of underlying, squared", "per 1 of underlying, squared"),
+    "vega": ("dV/dsigma", "per 1.00 of vol", "per vol point"),
+    "theta": ("-dV/dT", "per year", "per calendar day"),
+    "rho": ("dV/dr", "per 1.00 of rate", "per 1% of rate"),
+    "div_rho": ("dV/dq", "per 1.00 of yield", "per 1% of yield"),
+    "vanna": ("d2V/dU dsigma", "per 1 of underlying per 1.00 of vol",
+              "per 1 of underlying per vol point"),
+    "volga": ("d2V/dsigma2", "per 1.00 of vol, squared", "per vol point, squared"),
+    "charm": ("-d2V/dU dT", "per 1 of underlying per year",
+              "per 1 of underlying per calendar day"),
+    "veta": ("-d2V/dsigma dT", "per 1.00 of vol per year", "per vol point per calendar day"),
+    "speed": ("d3V/dU3", "per 1 of underlying, cubed", "per 1 of underlying, cubed"),
+    "zomma": ("d3V/dU2 dsigma", "per 1 of underlying squared per 1.00 of vol",
+              "per 1 of underlying squared per vol point"),
+    "color": ("-d3V/dU2 dT", "per 1 of underlying squared per year",
+              "per 1 of underlying squared per calendar day"),
+    "ultima": ("d3V/dsigma3", "per 1.00 of vol, cubed", "per vol point, cubed"),
+    "dual_delta": ("dV/dK", "per 1 of strike", "per 1 of strike"),
+    "dual_gamma": ("d2V/dK2", "per 1 of strike, squared", "per 1 of strike, squared"),
+}
+assert tuple(GREEKS) == _greeks.GREEK_NAMES
+
+
+def _normal_vol_units():
+    """The units of the Greeks taken against a normal vol (price units per year^1/2):
+    GREEKS' wording with "normal vol" for "vol"; the desk scale (1/100 per order in the
+    vol) is the same."""
+    out = {}
+    for name, (_, raw, desk) in GREEKS.items():
+        if "vol" in raw:
+            out[name] = (raw.replace("of vol", "of normal vol"),
+                         desk.replace("vol point", "0.01 of normal vol"))
+    return out
 
 
 def _all_but(*names):
@@ -104,6 +145,7 @@ MODELS = {
         underlying="forward",
         extras=(),
         greeks=_all_but("div_rho"),
+        units=_normal_vol_units(),
         kernels={"price": _bachelier.price, "implied_vol": _bachelier.implied_vol,
                  "greeks": _bachelier.greeks, "sweep": _bachelier.sweep,
                  "bid_ask": _bachelier.bid_ask},
@@ -112,31 +154,6 @@ MODELS = {
 
 MODEL_NAMES = tuple(MODELS)
 
-# What each Greek is, and its units: raw (the analytic derivative) and desk (raw times
-# greeks.DESK_SCALE).  "underlying" is the model's underlying input (spot or forward).
-GREEKS = {
-    "delta": ("dV/dU", "per 1 of underlying", "per 1 of underlying"),
-    "gamma": ("d2V/dU2", "per 1 of underlying, squared", "per 1 of underlying, squared"),
-    "vega": ("dV/dsigma", "per 1.00 of vol", "per vol point"),
-    "theta": ("-dV/dT", "per year", "per calendar day"),
-    "rho": ("dV/dr", "per 1.00 of rate", "per 1% of rate"),
-    "div_rho": ("dV/dq", "per 1.00 of yield", "per 1% of yield"),
-    "vanna": ("d2V/dU dsigma", "per 1 of underlying per 1.00 of vol",
-              "per 1 of underlying per vol point"),
-    "volga": ("d2V/dsigma2", "per 1.00 of vol, squared", "per vol point, squared"),
-    "charm": ("-d2V/dU dT", "per 1 of underlying per year",
-              "per 1 of underlying per calendar day"),
-    "veta": ("-d2V/dsigma dT", "per 1.00 of vol per year", "per vol point per calendar day"),
-    "speed": ("d3V/dU3", "per 1 of underlying, cubed", "per 1 of underlying, cubed"),
-    "zomma": ("d3V/dU2 dsigma", "per 1 of underlying squared per 1.00 of vol",
-              "per 1 of underlying squared per vol point"),
-    "color": ("-d3V/dU2 dT", "per 1 of underlying squared per year",
-              "per 1 of underlying squared per calendar day"),
-    "ultima": ("d3V/dsigma3", "per 1.00 of vol, cubed", "per vol point, cubed"),
-    "dual_delta": ("dV/dK", "per 1 of strike", "per 1 of strike"),
-    "dual_gamma": ("d2V/dK2", "per 1 of strike, squared", "per 1 of strike, squared"),
-}
-assert tuple(GREEKS) == _greeks.GREEK_NAMES
 
 OPERATIONS = {
     "price": Operation("price", "vol", ("price", "status"),
@@ -166,6 +183,7 @@ def _check():
         assert set(m.kernels) == set(KERNEL_OPERATIONS), m.name
         assert m.underlying in ("spot", "forward"), m.name
         assert all(g in GREEKS for g in m.greeks), m.name
+        assert set(m.units) <= set(m.greeks), m.name
 
 
 _check()

@@ -69,11 +69,19 @@ def iv_exact(P, F, K, T, D, cp, dps=DPS):
             return +(tv * mp.sqrt(2 * mp.pi) / mp.sqrt(T))
         lv = mp.log(tv / abs(x))
 
-        def f(t):                                   # ln psi(e^t) - ln v
+        def f(t):                                   # ln psi(e^t) - ln v, decreasing
             u = mp.exp(t)
             return mp.log(mp.npdf(u) / u - mp.ncdf(-u)) - lv
 
-        t = mp.findroot(f, (mpf(-80), mpf(5)), solver="anderson")
+        a, b = mpf(-80), mpf(5)                     # bisection, then Newton in t
+        for _ in range(60):
+            m = (a + b) / 2
+            a, b = (m, b) if f(m) > 0 else (a, m)
+        t = (a + b) / 2
+        for _ in range(12):
+            u = mp.exp(t)
+            psi = mp.npdf(u) / u - mp.ncdf(-u)
+            t = t - f(t) / (-mp.npdf(u) / (u * psi))  # d ln psi(e^t) / dt = -phi / (u psi)
         return +(abs(x) / mp.exp(t) / mp.sqrt(T))
 
 

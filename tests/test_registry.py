@@ -263,3 +263,11 @@ def test_kernel_tables_match_the_registry():
             for doc_name, param in zip(documented, params):
                 if doc_name in ("K", "T", "D", "vol", "cp", "mask", "premium", "bid", "ask"):
                     assert doc_name == param, (m.name, op, doc_name, param)
+
+
+def test_per_model_unit_table_matches_registry():
+    # the Greeks whose units differ by model (a normal vol's), as registry Model.units
+    rows = _table(_section("Greeks"), "model")
+    documented = {(_ticked(r[0])[0], _ticked(r[1])[0]): (r[2], r[3]) for r in rows}
+    expected = {(m.name, g): u for m in registry.MODELS.values() for g, u in m.units.items()}
+    assert documented == expected
