@@ -260,3 +260,23 @@ def test_inputs_untouched_after_every_operation(fuzz):
                  "bid", "ask"):
         got = t.column(name).combine_chunks().fill_null(np.nan).to_numpy()
         assert np.array_equal(got.view(np.uint64), raw[name].view(np.uint64)), name
+
+
+def test_price_and_implied_vol_bachelier(fuzz):
+    # the normal model on the same hostile rows: the same input sentences; forwards and
+    # strikes of any sign are data (never bad_underlying / bad_strike)
+    t, raw = fuzz
+    n = N_ROWS // 4
+    sub = {k: v[:n] for k, v in raw.items()}
+    inp = _as_black76(t.drop_columns(["premium", "bid", "ask"])).slice(0, n)
+    out = volsweep.price(inp, model="bachelier")
+    codes = check_invariants(inp, out, ["price"])
+    _ids_in_order(out)
+    _input_sentences(sub, codes, "bachelier", need_vol=True)
+    assert not np.isin(codes, [NAMES.index("bad_underlying"), NAMES.index("bad_strike")]).any()
+    assert (codes == 0).mean() > 0.2
+    inp = _as_black76(t.drop_columns(["vol", "bid", "ask"])).slice(0, n)
+    out = volsweep.implied_vol(inp, model="bachelier")
+    codes = check_invariants(inp, out, ["iv"])
+    _input_sentences(sub, codes, "bachelier", need_vol=False, quote="premium")
+    assert (codes == 0).mean() > 0.1

@@ -27,6 +27,7 @@ from hypothesis import strategies as st
 
 import volsweep
 from volsweep.cli import main as cli_main
+from volsweep.kernel import registry
 from test_fuzz import check_invariants, same_table
 
 PROPERTY = settings(max_examples=40, deadline=None,
@@ -58,7 +59,7 @@ OPS = {
 
 
 def _all_greeks(model):
-    return [g for g in volsweep.GREEK_NAMES if model == "bsm" or g != "div_rho"]
+    return list(registry.model(model).greeks)
 
 
 def _needs_vol(op):
@@ -67,8 +68,7 @@ def _needs_vol(op):
 
 def _required(op, model):
     """Input columns of one operation, in our default names."""
-    cols = ["spot" if model == "bsm" else "forward", "strike", "expiry_years", "rate",
-            "is_call"]
+    cols = [registry.model(model).underlying, "strike", "expiry_years", "rate", "is_call"]
     if _needs_vol(op):
         cols.append("vol")
     cols += list(OPS[op][2])
@@ -98,8 +98,9 @@ def hostile_tables(draw, op, model, min_rows=0, max_rows=24):
     plausible = {"spot": S, "forward": S, "strike": K,
                  "expiry_years": rng.uniform(0.01, 3.0, n), "rate": rng.uniform(0, 0.1, n),
                  "div_yield": rng.uniform(0, 0.05, n), "vol": rng.uniform(0.05, 1.0, n),
-                 "premium": prem, "bid": prem - half, "ask": prem + half}
-    names = _required(op, model) + (["div_yield"] if model == "bsm" else [])
+                 "premium": prem, "bid": prem - half, "ask": prem + half,
+                 "shift": rng.uniform(0.0, 0.05, n)}
+    names = _required(op, model) + [x.name for x in registry.model(model).extras]
     cols = {"id": np.arange(n)}
     for name in names:
         cols[name] = (list(is_call) if name == "is_call" else list(plausible[name]))
@@ -206,7 +207,7 @@ def _check(op, model, inp, out):
 
 # ----------------------------------------------------------------- data problems
 
-@pytest.mark.parametrize("model", ["bsm", "black76"])
+@pytest.mark.parametrize("model", registry.MODEL_NAMES)
 @pytest.mark.parametrize("op", list(OPS))
 @PROPERTY
 @given(data=st.data())
@@ -237,7 +238,7 @@ def test_data_problems_give_statuses_never_exceptions(op, model, data):
 
 @pytest.mark.parametrize("op", ["price", "iv", "greeks_two"])
 def test_empty_and_one_row_inputs(op):
-    for model in ("bsm", "black76"):
+    for model in registry.MODEL_NAMES:
         cols = _required(op, model)
         empty = pa.table({c: pa.array([], pa.bool_() if c == "is_call" else pa.float64())
                           for c in cols})
