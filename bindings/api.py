@@ -164,8 +164,11 @@ class Prepared:
         if not batch.schema.equals(self.in_schema):
             raise ValueError(f"this {self.operation} was prepared for another schema: "
                              "call prepare() with this batch's schema")
-        with _kernel_launch():
+        if _workqueue is False:          # thread-safe threading layer: no lock (the usual)
             cols = self._compute(batch)
+        else:
+            with _kernel_launch():
+                cols = self._compute(batch)
         return append(batch, self.out_schema, cols)
 
     # ------------------------------------------------------------ per operation

@@ -28,7 +28,8 @@ from volsweep.kernel._jit import BLOCK
 _VEGA = 1 << _greeks.GREEK_NAMES.index("vega")
 _LOADED: set = set()
 _LOCK = threading.Lock()
-_NOTICE_AFTER = 0.5        # seconds: a load that takes longer is a compile; say so
+_NOTICE_AFTER = 2.0        # seconds: a load that takes longer is a compile (loading
+#                            from the disk cache takes milliseconds, ~1 s on a loaded machine)
 
 
 def served_mask(model: str, mask: int) -> int:
@@ -76,7 +77,7 @@ def _touch(model: str, op: str, mask: int) -> None:
 
 def load_kernel(model: str, op: str, mask: int = 0) -> float:
     """Load (or compile) one kernel variant once per process; returns the seconds spent
-    (0 when it was already loaded).  A load that takes longer than half a second is a
+    (0 when it was already loaded).  A load that takes longer than two seconds is a
     compile: a line on stderr says so while it runs, and another when it is done."""
     key = (model, op, mask)
     if key in _LOADED:
