@@ -53,7 +53,7 @@ def codes(n: int, cp) -> np.ndarray:
     if not np.issubdtype(cp.dtype, np.integer):
         raise TypeError(f"cp must be integer codes (+1 call, -1 put, 0 missing), "
                         f"got dtype {cp.dtype}")
-    # two reductions, no temporaries (0.06 ms per 2M rows; all() over a mask: 0.32 ms)
+    # otherwise: two reductions, no temporaries (cheaper than all() over a mask)
     if cp.dtype != np.int8 or (cp.size and (cp.min() < -1 or cp.max() > 1)):
         cp = np.where((cp == 1) | (cp == -1), cp, 0).astype(np.int8)
     cp = np.ascontiguousarray(cp)
