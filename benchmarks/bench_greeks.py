@@ -84,7 +84,7 @@ def _runner(model, impl, d):
     """A no-argument callable doing one pass of ``impl`` over the batch ``d``."""
     n = d["K"].shape[0]
     U = d["F"] if model == "black76" else d["spot"]
-    cols = ((U, d["K"], d["T"], d["D"], d["vol"], d["cp"]) if model == "black76"
+    cols = ((U, d["K"], d["T"], d["D"], np.zeros(n), d["vol"], d["cp"]) if model == "black76"
             else (U, d["K"], d["T"], d["D"], d["q"], d["vol"], d["cp"]))
     status = np.empty(n, dtype=np.int8)
     if impl == "price":

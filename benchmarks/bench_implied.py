@@ -39,7 +39,7 @@ def make_contracts(n, seed=11):
     cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
     price = np.empty(n)
     st = np.empty(n, dtype=np.int8)
-    black.black76_price(F, K, T, D, vol, cp, price, st)
+    black.black76_price(F, K, T, D, np.zeros(n), vol, cp, price, st)
     intrinsic = D * np.maximum(np.where(cp > 0, F - K, K - F), 0.0)
     good = (st == 0) & (price > intrinsic) & (price - intrinsic > 1e-300 * F)
     return {k: np.ascontiguousarray(v[good]) for k, v in
@@ -63,14 +63,16 @@ def tolerance(c):
 def ours_iv(c, out=None):
     iv = np.empty_like(c["F"]) if out is None else out
     st = np.empty(c["F"].shape, dtype=np.int8)
-    implied.black76_iv(c["premium"], c["F"], c["K"], c["T"], c["D"], c["cp"], iv, st)
+    implied.black76_iv(c["premium"], c["F"], c["K"], c["T"], c["D"], np.zeros(iv.shape), c["cp"],
+                       iv, st)
     return iv
 
 
 def ours_price(c):
     p = np.empty_like(c["F"])
     st = np.empty(c["F"].shape, dtype=np.int8)
-    black.black76_price(c["F"], c["K"], c["T"], c["D"], c["vol"], c["cp"], p, st)
+    black.black76_price(c["F"], c["K"], c["T"], c["D"], np.zeros(p.shape), c["vol"], c["cp"],
+                        p, st)
     return p
 
 

@@ -79,8 +79,10 @@ def _runner(model, impl, d):
     price = np.empty(n)
     status = np.empty(n, dtype=np.int8)
     if impl == "ours":
-        fn = black.black76_price if model == "black76" else black.bsm_price
-        return lambda: fn(*args, price, status)
+        if model == "black76":                    # shift 0: plain Black-76
+            shift = np.zeros(n)
+            return lambda: black.black76_price(*args[:4], shift, *args[4:], price, status)
+        return lambda: black.bsm_price(*args, price, status)
     if impl == "floor":
         fn = floor_black76 if model == "black76" else floor_bsm
         return lambda: fn(*args, price)

@@ -37,7 +37,7 @@ import numpy as np
 
 from benchmarks import bench_greeks, bench_implied, bench_price
 from benchmarks._timing import median_times
-from volsweep.kernel import black, greeks, implied, sweep
+from volsweep.kernel import black, greeks, implied, registry, sweep
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -50,7 +50,7 @@ def _kernel_runs(model: str, d: dict) -> dict:
     n = d["K"].shape[0]
     m = greeks.greek_mask(None, model)   # all the model has (Black-76: no div_rho)
     U = d["F"] if model == "black76" else d["spot"]
-    cols = (U, d["K"], d["T"], d["D"]) + (() if model == "black76" else (d["q"],))
+    cols = (U, d["K"], d["T"], d["D"]) + ((np.zeros(n),) if model == "black76" else (d["q"],))
     p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
     out = np.empty((bin(m).count("1"), n))
     fp, fi, fg, fs = ((black.black76_price, implied.black76_iv, greeks.black76_greeks,
@@ -58,7 +58,7 @@ def _kernel_runs(model: str, d: dict) -> dict:
                       (black.bsm_price, implied.bsm_iv, greeks.bsm_greeks, sweep.bsm_sweep))
     fp(*cols, d["vol"], d["cp"], p, st)
     prem = p.copy()
-    floor = bench_price.floor_black76 if model == "black76" else bench_price.floor_bsm
+    floor = bench_price.floor_bsm        # one extra input each (Black-76: the shift)
     fl_out = np.empty(n)
     return {
         "floor": lambda: floor(*cols, d["vol"], d["cp"], fl_out),
@@ -95,6 +95,37 @@ def kernel_section(n: int, repeats: int) -> dict:
                                    for k in ("price", "iv", "greeks", "sweep"))
             for model in ("black76", "bsm")))
     return res
+
+
+def models_section(n: int, repeats: int) -> dict:
+    """Price and implied vol of every model of the registry, all taking turns in the same
+    rounds (2 threads): the cross-model ratios.  Same batch for every model (its extra
+    inputs at their registry defaults; for a normal model the vols are read as normal vols,
+    so most of its rows are far from the money): the kernels are branch-free, so a row
+    costs the same whatever its values."""
+    d = bench_price.make_data(n)
+    d = dict(d, forward=d["F"], div_yield=d["q"])
+    runs = {}
+    for name, m in registry.MODELS.items():
+        cols = (d[m.underlying], d["K"], d["T"], d["D"]) + tuple(
+            d[x.name] if x.name in d else np.full(n, x.default) for x in m.extras)
+        p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
+        m.kernels["price"](*cols, d["vol"], d["cp"], p, st)
+        prem = p.copy()
+        runs[f"{name} price"] = (lambda m=m, c=cols, p=p, st=st:
+                                 m.kernels["price"](*c, d["vol"], d["cp"], p, st))
+        runs[f"{name} iv"] = (lambda m=m, c=cols, q=prem, iv=iv, st=st:
+                              m.kernels["implied_vol"](q, *c, d["cp"], iv, st))
+    t = _rounds(runs, repeats)
+    r = {k: n / v for k, v in t.items()}
+    print(f"\n1b. Every model's price and implied vol taking turns, {n:,} rows, 2 threads "
+          "(M contracts/s; ratios to the first model's price and to the model's own price)")
+    first = f"{registry.MODEL_NAMES[0]} price"
+    for name in registry.MODEL_NAMES:
+        print(f"  {name:9} price {r[f'{name} price'] / 1e6:7.1f} (x{r[f'{name} price'] / r[first]:.2f} "
+              f"{first})   iv {r[f'{name} iv'] / 1e6:7.1f} (iv/price "
+              f"{r[f'{name} iv'] / r[f'{name} price']:.3f})")
+    return r
 
 
 def alternatives_section(n: int, repeats: int, brentq_rows: int = 2000) -> None:
@@ -259,13 +290,14 @@ def latency_section() -> None:
 _ASM = """
 import json, re, numpy as np
 import volsweep
-from volsweep.kernel import black, implied, greeks
+from volsweep.kernel import bachelier, black, implied, greeks
 volsweep.warmup(which=None, sweep=False)
 found = {}
 loops = {"black76 price": black._black76_price_rows, "bsm price": black._bsm_price_rows,
          "black76 iv": implied._black76_iv_rows, "bsm iv": implied._bsm_iv_rows,
          "black76 greeks": greeks._kernel("black76", greeks.greek_mask(None, "black76"))[0],
-         "bsm greeks": greeks._kernel("bsm", greeks.greek_mask(None, "bsm"))[0]}
+         "bsm greeks": greeks._kernel("bsm", greeks.greek_mask(None, "bsm"))[0],
+         "bachelier price": bachelier._price_rows, "bachelier iv": bachelier._iv_rows}
 for name, fn in loops.items():
     asm = "\\n".join(fn.inspect_asm().values())
     packed = len(re.findall(r"\\bv(?:fmadd|fmsub|fnmadd|mul|add|sub|div)\\w*pd\\s+%[yz]mm", asm))
@@ -329,6 +361,7 @@ def main(argv=None, rows: int | None = None) -> int:
     volsweep.warmup()
     print(f"volsweep benchmark report, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     kernel_section(args.rows, args.repeats)
+    models_section(args.rows, args.repeats)
     print(f"   machine: {machine()}")
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)

@@ -225,8 +225,9 @@ def _householder(u, vs, lsc):
     # residual ln v - ln psi(u) = ln(v 2z / h) + z^2, without cancellation
     delta = log(vs * (2.0 * z) / hz) - lsc + z * z
     w = u * _SQRT_PI * hz
-    iu = 1.0 / u
-    iw = 1.0 / w
+    r = 1.0 / (u * w)                               # one division for 1/u and 1/w
+    iu = w * r
+    iw = u * r
     u2 = u * u
     h2 = iw - (u2 + 2.0) * iu                       # (ln psi)'' / (ln psi)'
     h3 = u2 + 3.0 + 6.0 * iu * iu - 3.0 * (u2 + 2.0) * iu * iw + 2.0 * iw * iw
@@ -236,8 +237,9 @@ def _householder(u, vs, lsc):
 
 
 @scalar
-def bachelier_total_vol(P, F, K, D, cp):
-    """(s, status) of one quote with valid inputs (F - K finite, D > 0, cp = +-1)."""
+def bachelier_implied_vol(P, F, K, T, D, cp):
+    """(sigma, status) of one quote with valid inputs (F - K finite, T > 0, D > 0,
+    cp = +-1); sigma = s / sqrt(T) with s the total normal vol."""
     call = cp > 0.0
     tvs, small = exact_time_value(P, F if call else K, K if call else F, D)
     x = F - K
@@ -250,13 +252,15 @@ def bachelier_total_vol(P, F, K, D, cp):
     u0 = _guess(vs, lt)
     u = _householder(u0 if u0 > _U_SMALL else 1.0, vs, lsc)
     tv = tvs * 2.0 ** -200 if small else tvs
-    s = ax / u
-    s = SQRT2PI * (tv + 0.5 * ax) if u0 <= _U_SMALL else s
+    sqT = math.sqrt(T)
+    near = u0 <= _U_SMALL
+    # sigma = |x| / (u sqrt(T)), or the near-the-money form: one division for either
+    sig = (SQRT2PI * (tv + 0.5 * ax) if near else ax) / (sqT if near else u * sqT)
     st = S.NO_TIME_VALUE if not (tvs > 0.0) else S.OK
     st = S.BELOW_INTRINSIC if (tvs < 0.0 or P < 0.0) else st
     st = S.NON_FINITE_INPUT if abs(P) == INF else st
     st = S.MISSING_INPUT if P != P else st
-    return s, st
+    return sig, st
 
 
 # ------------------------------------------------------------------ Greeks
@@ -326,10 +330,10 @@ def _iv_rows(a, e, premium, F, K, T, D, cp, iv_out, status_out):
         dd = D[i]
         st, x = bachelier_inputs(F[i], K[i], tt, dd, 0.0, cp[i])
         ok = st == S.OK
-        s, st2 = bachelier_total_vol(premium[i], F[i] if ok else 1.0, K[i] if ok else 0.0,
-                                     dd if ok else 1.0, float(cp[i]) if ok else 1.0)
+        v, st2 = bachelier_implied_vol(premium[i], F[i] if ok else 1.0,
+                                       K[i] if ok else 0.0, tt if ok else 1.0,
+                                       dd if ok else 1.0, float(cp[i]) if ok else 1.0)
         st = st2 if ok else st
-        v = s / math.sqrt(tt)
         st = S.OUT_OF_RANGE if (st == S.OK and not (v < INF)) else st   # overflow
         iv_out[i] = v if st == S.OK else NAN
         status_out[i] = st

@@ -59,3 +59,14 @@ def assert_within(err, tol, label="", columns=None, show=5):
             lines.append(f"  row {i}: err={err[i]:.4g} ulp, tol={tol[i]:.4g} ulp; {cols}")
         raise AssertionError("\n".join(lines))
     return float(ratio.max()) if ratio.size else 0.0
+
+
+def load_reference(path):
+    """The arrays of an mpmath reference table (tests/gen_*.py), after checking its
+    provenance: mpmath at 50 digits or more."""
+    import json
+
+    z = np.load(path, allow_pickle=False)
+    prov = json.loads(str(z["provenance"]))
+    assert prov["reference_library"] == "mpmath" and prov["mp_dps"] >= 50
+    return {k: z[k] for k in z.files if k != "provenance"}

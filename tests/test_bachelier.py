@@ -7,7 +7,6 @@ premium's elasticities (tests/gen_bachelier_reference.py).  References: mpmath t
 written by tests/gen_bachelier_reference.py, or mpmath here for small cases.
 """
 
-import json
 import math
 import os
 
@@ -16,7 +15,7 @@ import pytest
 from mpmath import mp, mpf
 from scipy.special import ndtr
 
-from conftest import EPS, assert_within, ulp_error
+from conftest import EPS, assert_within, load_reference, ulp_error
 from volsweep.kernel import bachelier as B
 from volsweep.kernel import black, greeks as G, implied
 from volsweep.kernel import status as S
@@ -60,10 +59,7 @@ def greeks(F, K, T, D, vol, cp, mask=ALL):
 
 @pytest.fixture(scope="module")
 def table():
-    z = np.load(TABLE, allow_pickle=False)
-    prov = json.loads(str(z["provenance"]))
-    assert prov["reference_library"] == "mpmath" and prov["mp_dps"] >= 50
-    return {k: z[k] for k in z.files if k != "provenance"}
+    return load_reference(TABLE)
 
 
 def _set(table, name):

@@ -23,7 +23,7 @@ N_THREADS = 8
 ROUNDS = 3
 ROWS = 6000
 CASES = ["price_bsm", "iv_bsm", "iv_bid_ask_bsm", "greeks_bsm", "greeks_delta_vega_desk",
-         "sweep_bsm", "price_black76", "sweep_bid_ask_black76"]
+         "sweep_bsm", "price_black76", "sweep_bid_ask_black76", "iv_bachelier"]
 
 
 @pytest.fixture(scope="module")

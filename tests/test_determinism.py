@@ -88,6 +88,13 @@ def cases():
         "sweep_bsm": (volsweep.sweep, {}, bsm(["vol", "bid", "ask"])),
         "sweep_bid_ask_black76": (volsweep.sweep, {"model": "black76", "which": SWEEP_FOUR},
                                   b76(["vol", "premium"])),
+        "price_bachelier": (volsweep.price, {"model": "bachelier"},
+                            b76(["premium", "bid", "ask"])),
+        "iv_bachelier": (volsweep.implied_vol, {"model": "bachelier"},
+                         b76(["vol", "bid", "ask"])),
+        "sweep_bid_ask_bachelier": (volsweep.sweep, {"model": "bachelier",
+                                                     "which": SWEEP_FOUR},
+                                    b76(["vol", "premium"])),
     }
 
 
