@@ -100,20 +100,22 @@ def kernel_section(n: int, repeats: int) -> dict:
 def models_section(n: int, repeats: int) -> dict:
     """Price and implied vol of every model of the registry, all taking turns in the same
     rounds (2 threads): the cross-model ratios.  Same batch for every model (its extra
-    inputs at their registry defaults; for a normal model the vols are read as normal vols,
-    so most of its rows are far from the money): the kernels are branch-free, so a row
-    costs the same whatever its values."""
+    inputs at their registry defaults; a normal model's vols are the batch's lognormal
+    vols times the forward, so its rows sit as far from the money in standard
+    deviations)."""
     d = bench_price.make_data(n)
     d = dict(d, forward=d["F"], div_yield=d["q"])
     runs = {}
     for name, m in registry.MODELS.items():
         cols = (d[m.underlying], d["K"], d["T"], d["D"]) + tuple(
             d[x.name] if x.name in d else np.full(n, x.default) for x in m.extras)
+        # a normal vol of the same size in standard deviations (registry Model.vol)
+        vol = d["vol"] * d["F"] if m.vol == "normal" else d["vol"]
         p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
-        m.kernels["price"](*cols, d["vol"], d["cp"], p, st)
+        m.kernels["price"](*cols, vol, d["cp"], p, st)
         prem = p.copy()
-        runs[f"{name} price"] = (lambda m=m, c=cols, p=p, st=st:
-                                 m.kernels["price"](*c, d["vol"], d["cp"], p, st))
+        runs[f"{name} price"] = (lambda m=m, c=cols, v=vol, p=p, st=st:
+                                 m.kernels["price"](*c, v, d["cp"], p, st))
         runs[f"{name} iv"] = (lambda m=m, c=cols, q=prem, iv=iv, st=st:
                               m.kernels["implied_vol"](q, *c, d["cp"], iv, st))
     t = _rounds(runs, repeats)

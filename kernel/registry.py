@@ -54,6 +54,8 @@ class Model:
     greeks: tuple                  # the Greeks it defines, in GREEK_NAMES order
     kernels: dict = field(repr=False)   # operation -> kernel entry point (see above)
     exercise: str = "european"
+    vol: str = "lognormal"         # the vol input: "lognormal" (per year^1/2) or "normal"
+    #                                (price units per year^1/2)
     units: dict = field(default_factory=dict)  # Greek -> (raw, desk) unit where it differs
     #                                            from GREEKS (e.g. a normal vol's)
 
@@ -145,6 +147,7 @@ MODELS = {
         underlying="forward",
         extras=(),
         greeks=_all_but("div_rho"),
+        vol="normal",
         units=_normal_vol_units(),
         kernels={"price": _bachelier.price, "implied_vol": _bachelier.implied_vol,
                  "greeks": _bachelier.greeks, "sweep": _bachelier.sweep,
@@ -199,6 +202,7 @@ def _check():
         assert m.underlying in ("spot", "forward"), m.name
         assert all(g in GREEKS for g in m.greeks), m.name
         assert set(m.units) <= set(m.greeks), m.name
+        assert m.vol in ("lognormal", "normal"), m.name
 
 
 _check()

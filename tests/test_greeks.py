@@ -530,7 +530,7 @@ def test_greek_names_and_masks():
     with pytest.raises(ValueError, match="unknown Greek"):
         G.greek_mask(("delta", "lambda"))
     with pytest.raises(ValueError, match="unknown model"):
-        G.greek_mask(None, "bachelier")
+        G.greek_mask(None, "heston")
 
 
 def test_desk_scale_follows_one_rule():
