@@ -120,13 +120,15 @@ def models_section(n: int, repeats: int) -> dict:
                               m.kernels["implied_vol"](q, *c, d["cp"], iv, st))
     t = _rounds(runs, repeats)
     r = {k: n / v for k, v in t.items()}
-    print(f"\n1b. Every model's price and implied vol taking turns, {n:,} rows, 2 threads "
-          "(M contracts/s; ratios to the first model's price and to the model's own price)")
-    first = f"{registry.MODEL_NAMES[0]} price"
+    print(f"\n1b. Every model's price and implied vol taking turns, {n:,} rows, "
+          f"{numba.get_num_threads()} threads (M contracts/s; price against the other "
+          "models' prices, iv against the model's own price)")
     for name in registry.MODEL_NAMES:
-        print(f"  {name:9} price {r[f'{name} price'] / 1e6:7.1f} (x{r[f'{name} price'] / r[first]:.2f} "
-              f"{first})   iv {r[f'{name} iv'] / 1e6:7.1f} (iv/price "
-              f"{r[f'{name} iv'] / r[f'{name} price']:.3f})")
+        px = r[f"{name} price"]
+        others = ", ".join(f"x{px / r[f'{o} price']:.2f} {o}" for o in registry.MODEL_NAMES
+                           if o != name)
+        print(f"  {name:9} price {px / 1e6:7.1f} ({others})   iv "
+              f"{r[f'{name} iv'] / 1e6:7.1f} (iv/price {r[f'{name} iv'] / px:.3f})")
     return r
 
 
