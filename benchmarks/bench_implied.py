@@ -38,7 +38,7 @@ SQRT2PI = math.sqrt(2.0 * math.pi)
 REFERENCE_MODELS = ("black76",)
 
 
-def make_contracts(n, seed=11, model="black76"):
+def make_contracts(n, seed=11, model=REFERENCE_MODELS[0]):
     """Seeded synthetic contracts for the registry model ``model`` (the same forwards,
     strikes, expiries and vols for every model; spot and yield consistent with the
     forward), premiums from its own price kernel, valid rows only.  Keys: the registry's
@@ -80,7 +80,7 @@ def tolerance(c):
 
 # ---------------------------------------------------------------- the implementations
 
-def ours_iv(c, out=None, model="black76"):
+def ours_iv(c, out=None, model=REFERENCE_MODELS[0]):
     m = registry.model(model)
     iv = np.empty_like(c["F"]) if out is None else out
     st = np.empty(c["F"].shape, dtype=np.int8)
@@ -88,7 +88,7 @@ def ours_iv(c, out=None, model="black76"):
     return iv
 
 
-def ours_price(c, model="black76"):
+def ours_price(c, model=REFERENCE_MODELS[0]):
     m = registry.model(model)
     p = np.empty_like(c["F"])
     st = np.empty(c["F"].shape, dtype=np.int8)
@@ -207,7 +207,7 @@ def main(argv=None):
 _BENCH_ROWS = 200_000
 
 
-def _bench_data(model="black76"):
+def _bench_data(model=REFERENCE_MODELS[0]):
     cache = _bench_data.__dict__.setdefault("cache", {})
     if model not in cache:
         cache[model] = make_contracts(_BENCH_ROWS, model=model)

@@ -117,11 +117,13 @@ def take_turns(sides, rounds: int, pause: float = 0.02) -> list:
     """Per side, {case: median seconds} over ``rounds`` rounds, the sides taking turns."""
     times = [dict() for _ in sides]
     for r in range(rounds):
+        print(f"\r  round {r + 1}/{rounds}", end="", file=sys.stderr, flush=True)
         order = range(len(sides)) if r % 2 == 0 else reversed(range(len(sides)))
         for i in order:
             time.sleep(pause)
             for key, t in sides[i].ask(op="round").items():
                 times[i].setdefault(key, []).append(t)
+    print(file=sys.stderr)
     return [{k: statistics.median(v) for k, v in t.items()} for t in times]
 
 
