@@ -159,18 +159,20 @@ def kernel_runs(spec, d) -> dict:
 
 # ---------------------------------------------------------------- table-level calls
 
-def snapshot(n: int):
-    """A one-chunk synthetic snapshot of n rows (no bad rows, premium quotes) and the
-    columns a kernel-level caller would hold, keyed as ``model_inputs`` reads them
-    (``K``, ``T``, the registry's input names) plus ``rate``, ``vol``, ``premium``, ``cp``."""
+def snapshot(n: int, quote: str = "premium"):
+    """A one-chunk synthetic snapshot of n rows (no bad rows; ``quote`` "premium" or
+    "bid_ask": the quote columns kept) and the columns a kernel-level caller would hold,
+    keyed as ``model_inputs`` reads them (``K``, ``T``, the registry's input names) plus
+    ``rate``, ``vol``, ``premium``, ``cp``."""
     import pyarrow as pa
 
     from volsweep.data_gen import make_snapshot
 
-    snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0).drop_columns(["bid", "ask"])
+    snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0)
+    snap = snap.drop_columns(["bid", "ask"] if quote == "premium" else ["premium"])
     snap = pa.Table.from_batches(snap.combine_chunks().to_batches())
     col = {k: snap.column(k).to_numpy() for k in
-           ("spot", "forward", "div_yield", "rate", "premium")}
+           ("spot", "forward", "div_yield", "rate", quote.split("_")[0])}
     col.update(K=snap.column("strike").to_numpy(), T=snap.column("expiry_years").to_numpy(),
                vol=snap.column("true_vol").to_numpy())
     col["cp"] = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1,
@@ -193,7 +195,7 @@ def table_runs(spec, snap, col, ops=TABLE_OPS, fresh=True) -> dict:
 
     name, k = spec.name, spec.kernels
     n = snap.num_rows
-    T, cp, prem, vol = col["T"], col["cp"], col["premium"], col["vol"]
+    T, cp, prem, vol = col["T"], col["cp"], col.get("premium"), col["vol"]
     U, K, _, _, *extras = model_inputs(spec, dict(col, D=None))
     m = all_greeks(spec)
     ng = bin(m).count("1")

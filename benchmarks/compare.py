@@ -15,7 +15,11 @@ Sections:
 
 * ``small``: table-level call against the discount factors + kernel into fresh outputs on
   the same columns (100 and 10,000 rows; ``calls`` calls per timing), per model and
-  operation (price, implied vol, sweep); the overhead above the kernel in microseconds;
+  operation (price, implied vol, sweep), with numba at 1 and at 2 threads (on a busy
+  2-core machine a parallel launch can wait milliseconds for its second thread); the
+  overhead above the kernel in microseconds;
+* ``quotes``: table-level implied vols of bid/ask quotes (the one-pass kernel after, three
+  implied-vol passes, a vega pass and the quote statuses in numpy before), per model;
 * ``kernel``: section 1 of the report (kernel throughput, 1 and 2 threads, every model,
   bid/ask one pass against three implied-vol passes and a vega pass).
 """
@@ -47,6 +51,11 @@ def _setup(msg) -> dict:
             d = _cases.make_data(msg["rows"])
             for case, fn in _cases.kernel_runs(spec, d).items():
                 runs[f"{spec.name} {case}"] = fn
+        elif msg["section"] == "quotes":
+            snap, _ = _cases.snapshot(msg["rows"], quote="bid_ask")
+            import volsweep
+            runs[f"{spec.name} implied_vol"] = (
+                lambda snap=snap, name=spec.name: volsweep.implied_vol(snap, model=name))
         else:
             for n in msg["sizes"]:
                 snap, col = _cases.snapshot(n)
@@ -133,30 +142,33 @@ def _start(sides, **setup) -> None:
         print(f"  {side.label}: volsweep from {info['volsweep']}, {len(info['cases'])} cases")
 
 
-def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES) -> dict:
-    """Microseconds per call: {(model, n, op): [(table, kernel) per side]}."""
+def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES, threads=(1, 2)) -> dict:
+    """Microseconds per call: {(model, n, op, threads): [(table, kernel) per side]}."""
     print(f"\nSmall batches, {' against '.join(s.label for s in sides)} taking turns "
           f"({rounds} rounds of {calls} calls; microseconds per call, median)")
     _start(sides, section="small", sizes=list(sizes), calls=calls)
-    med = take_turns(sides, rounds)
     found = {}
-    for key in med[0]:
-        if key.endswith(" kernel"):
-            continue
-        model, n, op = key.split(" ", 2)
-        found[(model, int(n), op)] = [
-            (t[key] / calls * 1e6, t[key + " kernel"] / calls * 1e6) if key in t else None
-            for t in med]
+    for th in threads:
+        for side in sides:
+            side.ask(op="threads", n=th)
+        med = take_turns(sides, rounds)
+        for key in med[0]:
+            if key.endswith(" kernel"):
+                continue
+            model, n, op = key.split(" ", 2)
+            found[(model, int(n), op, th)] = [
+                (t[key] / calls * 1e6, t[key + " kernel"] / calls * 1e6) if key in t else None
+                for t in med]
     labels = [s.label for s in sides]
-    print(f"  {'model':8s} {'rows':>6s} {'op':12s} "
+    print(f"  {'model':8s} {'rows':>6s} {'op':12s} {'thr':>3s} "
           + " ".join(f"{lab + ' table':>14s} {'kernel':>7s} {'above':>7s}" for lab in labels)
           + "   above: after - before")
-    for (model, n, op), per in found.items():
+    for (model, n, op, th), per in found.items():
         cells = " ".join("" if v is None else f"{v[0]:14.1f} {v[1]:7.1f} {v[0] - v[1]:7.1f}"
                          for v in per)
         delta = ("" if None in per else
                  f"   {(per[-1][0] - per[-1][1]) - (per[0][0] - per[0][1]):+7.1f}")
-        print(f"  {model:8s} {n:>6,d} {op:12s} {cells}{delta}")
+        print(f"  {model:8s} {n:>6,d} {op:12s} {th:>3d} {cells}{delta}")
     return found
 
 
@@ -190,16 +202,37 @@ def kernel_section(sides, rows: int, rounds: int) -> dict:
     return found
 
 
+def quotes_section(sides, rows: int, rounds: int) -> dict:
+    """Table-level ``implied_vol`` on bid/ask quotes: {model: [contracts/s per side]}."""
+    print(f"\nBid/ask quotes, table-level implied_vol (iv of bid, ask, mid, spread "
+          f"uncertainty, statuses), {rows:,} rows, {' against '.join(s.label for s in sides)} "
+          f"taking turns ({rounds} rounds; M contracts/s, median)")
+    _start(sides, section="quotes", rows=rows)
+    found = {}
+    for th in (1, 2):
+        for side in sides:
+            side.ask(op="threads", n=th)
+        med = take_turns(sides, rounds)
+        for key in med[0]:
+            found[(key.split(" ")[0], th)] = [rows / t[key] for t in med]
+    for (model, th), per in found.items():
+        print(f"  {model:8s} {th} thread(s): " + "  ".join(
+            f"{s.label} {v / 1e6:6.1f}" for s, v in zip(sides, per))
+            + f"   {sides[-1].label}/{sides[0].label} {per[-1] / per[0]:.3f}")
+    return found
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("before", help="checkout to compare against (with its own .venv)")
     ap.add_argument("--after", default=ROOT, help="checkout measured as 'after' (default: "
                     "this one)")
-    ap.add_argument("--sections", default="small,kernel")
+    ap.add_argument("--sections", default="small,kernel,quotes")
     ap.add_argument("--rows", type=int, default=2_000_000)
     ap.add_argument("--rounds", type=int, default=15)
     ap.add_argument("--small-rounds", type=int, default=60)
     ap.add_argument("--calls", type=int, default=20)
+    ap.add_argument("--quote-rows", type=int, default=500_000)
     args = ap.parse_args(argv)
     print(f"volsweep before/after, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     for label, root in (("before", args.before), ("after", args.after)):
@@ -211,6 +244,8 @@ def main(argv=None) -> int:
         try:
             if section == "small":
                 small_section(sides, args.small_rounds, args.calls)
+            elif section == "quotes":
+                quotes_section(sides, args.quote_rows, args.rounds)
             elif section == "kernel":
                 kernel_section(sides, args.rows, args.rounds)
             else:
