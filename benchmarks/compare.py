@@ -123,7 +123,7 @@ class Checkout:
 
 
 def take_turns(sides, rounds: int, pause: float = 0.02) -> list:
-    """Per side, {case: median seconds} over ``rounds`` rounds, the sides taking turns."""
+    """Per side, {case: [seconds per round]} over ``rounds`` rounds, the sides taking turns."""
     times = [dict() for _ in sides]
     for r in range(rounds):
         print(f"\r  round {r + 1}/{rounds}", end="", file=sys.stderr, flush=True)
@@ -133,7 +133,20 @@ def take_turns(sides, rounds: int, pause: float = 0.02) -> list:
             for key, t in sides[i].ask(op="round").items():
                 times[i].setdefault(key, []).append(t)
     print(file=sys.stderr)
+    return times
+
+
+def medians(times) -> list:
     return [{k: statistics.median(v) for k, v in t.items()} for t in times]
+
+
+def paired_speedup(times, key) -> float | None:
+    """The median over rounds of (first side's time / last side's time) in the same round:
+    the last side's speed relative to the first, each round compared with itself, so that
+    the drift of a shared machine from round to round cancels."""
+    if key not in times[0] or key not in times[-1]:
+        return None
+    return statistics.median(b / a for b, a in zip(times[0][key], times[-1][key]))
 
 
 def _start(sides, **setup) -> None:
@@ -147,11 +160,13 @@ def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES, threads=(1,
     print(f"\nSmall batches, {' against '.join(s.label for s in sides)} taking turns "
           f"({rounds} rounds of {calls} calls; microseconds per call, median)")
     _start(sides, section="small", sizes=list(sizes), calls=calls)
-    found = {}
+    found, best = {}, {}
     for th in threads:
         for side in sides:
             side.ask(op="threads", n=th)
-        med = take_turns(sides, rounds)
+        raw = take_turns(sides, rounds)
+        med = medians(raw)
+        least = [{k: min(v) for k, v in t.items()} for t in raw]
         for key in med[0]:
             if key.endswith(" kernel"):
                 continue
@@ -159,6 +174,9 @@ def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES, threads=(1,
             found[(model, int(n), op, th)] = [
                 (t[key] / calls * 1e6, t[key + " kernel"] / calls * 1e6) if key in t else None
                 for t in med]
+            best[(model, int(n), op, th)] = [
+                (t[key] - t[key + " kernel"]) / calls * 1e6 if key in t else None
+                for t in least]
     labels = [s.label for s in sides]
     print(f"  {'model':8s} {'rows':>6s} {'op':12s} {'thr':>3s} "
           + " ".join(f"{lab + ' table':>14s} {'kernel':>7s} {'above':>7s}" for lab in labels)
@@ -169,31 +187,39 @@ def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES, threads=(1,
         delta = ("" if None in per else
                  f"   {(per[-1][0] - per[-1][1]) - (per[0][0] - per[0][1]):+7.1f}")
         print(f"  {model:8s} {n:>6,d} {op:12s} {th:>3d} {cells}{delta}")
+    print("  best round (least time of any round, table and kernel each; microseconds above "
+          "the kernel): " + "; ".join(
+              f"{model} {n} {op} {th}t " + " -> ".join(f"{v:.1f}" for v in per if v is not None)
+              for (model, n, op, th), per in best.items()))
     return found
 
 
-def kernel_section(sides, rows: int, rounds: int) -> dict:
+def kernel_section(sides, rows: int, rounds: int, threads=(1, 2)) -> dict:
     """Contracts/s: {(model, threads, case): [per side, None where a side lacks it]}."""
     print(f"\nKernels, {rows:,} rows, {' against '.join(s.label for s in sides)} taking "
           f"turns ({rounds} rounds; M contracts/s, median)")
     _start(sides, section="kernel", rows=rows)
-    found = {}
-    for th in (1, 2):
+    found, paired = {}, {}
+    for th in threads:
         for side in sides:
             side.ask(op="threads", n=th)
-        med = take_turns(sides, rounds)
+        raw = take_turns(sides, rounds)
+        med = medians(raw)
         for key in dict.fromkeys(k for t in med for k in t):
             model, case = key.split(" ", 1)
             found[(model, th, case)] = [rows / t[key] if key in t else None for t in med]
+            paired[(model, th, case)] = paired_speedup(raw, key)
     labels = [s.label for s in sides]
     print(f"  {'model':8s} {'thr':>3s} {'case':12s} "
-          + " ".join(f"{lab:>8s}" for lab in labels) + f"  {labels[-1]}/{labels[0]}")
+          + " ".join(f"{lab:>8s}" for lab in labels) + f"  {labels[-1]}/{labels[0]}"
+          "  paired by round")
     for (model, th, case), per in found.items():
         cells = " ".join("       -" if v is None else f"{v / 1e6:8.1f}" for v in per)
-        ratio = "" if None in per else f"  {per[-1] / per[0]:6.3f}"
+        ratio = ("" if None in per else
+                 f"  {per[-1] / per[0]:12.3f}  {paired[(model, th, case)]:15.3f}")
         print(f"  {model:8s} {th:>3d} {case:12s} {cells}{ratio}")
     for model in dict.fromkeys(m for m, _, _ in found):
-        for th in (1, 2):
+        for th in threads:
             one, old = found.get((model, th, "bid/ask")), found.get((model, th, "bid/ask 3+1"))
             if one and old and one[-1] and old[-1]:
                 print(f"  {model} {th} thread(s): bid/ask in one pass {one[-1] / 1e6:.1f} M/s "
@@ -212,13 +238,15 @@ def quotes_section(sides, rows: int, rounds: int) -> dict:
     for th in (1, 2):
         for side in sides:
             side.ask(op="threads", n=th)
-        med = take_turns(sides, rounds)
-        for key in med[0]:
-            found[(key.split(" ")[0], th)] = [rows / t[key] for t in med]
+        raw = take_turns(sides, rounds)
+        for key, per in medians(raw)[0].items():
+            found[(key.split(" ")[0], th)] = [rows / t[key] for t in medians(raw)] + [
+                paired_speedup(raw, key)]
     for (model, th), per in found.items():
         print(f"  {model:8s} {th} thread(s): " + "  ".join(
             f"{s.label} {v / 1e6:6.1f}" for s, v in zip(sides, per))
-            + f"   {sides[-1].label}/{sides[0].label} {per[-1] / per[0]:.3f}")
+            + f"   {sides[-1].label}/{sides[0].label} {per[1] / per[0]:.3f} (paired by "
+            f"round: {per[2]:.3f})")
     return found
 
 
@@ -232,7 +260,10 @@ def main(argv=None) -> int:
     ap.add_argument("--rounds", type=int, default=15)
     ap.add_argument("--small-rounds", type=int, default=60)
     ap.add_argument("--calls", type=int, default=20)
+    ap.add_argument("--small-threads", default="1,2", help="numba threads of the small "
+                    "section, comma-separated")
     ap.add_argument("--quote-rows", type=int, default=500_000)
+    ap.add_argument("--kernel-threads", default="1,2")
     args = ap.parse_args(argv)
     print(f"volsweep before/after, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     for label, root in (("before", args.before), ("after", args.after)):
@@ -243,11 +274,13 @@ def main(argv=None) -> int:
         sides = [Checkout("before", args.before), Checkout("after", args.after)]
         try:
             if section == "small":
-                small_section(sides, args.small_rounds, args.calls)
+                small_section(sides, args.small_rounds, args.calls,
+                              threads=[int(t) for t in args.small_threads.split(",")])
             elif section == "quotes":
                 quotes_section(sides, args.quote_rows, args.rounds)
             elif section == "kernel":
-                kernel_section(sides, args.rows, args.rounds)
+                kernel_section(sides, args.rows, args.rounds,
+                               threads=[int(t) for t in args.kernel_threads.split(",")])
             else:
                 raise SystemExit(f"unknown section {section!r}")
         finally:
