@@ -149,6 +149,14 @@ def paired_speedup(times, key) -> float | None:
     return statistics.median(b / a for b, a in zip(times[0][key], times[-1][key]))
 
 
+def rounds_per_thread_count(sides, threads, rounds: int):
+    """(threads, the raw times of ``take_turns``) for each numba thread count."""
+    for th in threads:
+        for side in sides:
+            side.ask(op="threads", n=th)
+        yield th, take_turns(sides, rounds)
+
+
 def _start(sides, **setup) -> None:
     for side in sides:
         info = side.ask(op="setup", **setup)
@@ -161,10 +169,7 @@ def small_section(sides, rounds: int, calls: int, sizes=SMALL_SIZES, threads=(1,
           f"({rounds} rounds of {calls} calls; microseconds per call, median)")
     _start(sides, section="small", sizes=list(sizes), calls=calls)
     found, best = {}, {}
-    for th in threads:
-        for side in sides:
-            side.ask(op="threads", n=th)
-        raw = take_turns(sides, rounds)
+    for th, raw in rounds_per_thread_count(sides, threads, rounds):
         med = medians(raw)
         least = [{k: min(v) for k, v in t.items()} for t in raw]
         for key in med[0]:
@@ -200,10 +205,7 @@ def kernel_section(sides, rows: int, rounds: int, threads=(1, 2)) -> dict:
           f"turns ({rounds} rounds; M contracts/s, median)")
     _start(sides, section="kernel", rows=rows)
     found, paired = {}, {}
-    for th in threads:
-        for side in sides:
-            side.ask(op="threads", n=th)
-        raw = take_turns(sides, rounds)
+    for th, raw in rounds_per_thread_count(sides, threads, rounds):
         med = medians(raw)
         for key in dict.fromkeys(k for t in med for k in t):
             model, case = key.split(" ", 1)
@@ -228,19 +230,17 @@ def kernel_section(sides, rows: int, rounds: int, threads=(1, 2)) -> dict:
     return found
 
 
-def quotes_section(sides, rows: int, rounds: int) -> dict:
+def quotes_section(sides, rows: int, rounds: int, threads=(1, 2)) -> dict:
     """Table-level ``implied_vol`` on bid/ask quotes: {model: [contracts/s per side]}."""
     print(f"\nBid/ask quotes, table-level implied_vol (iv of bid, ask, mid, spread "
           f"uncertainty, statuses), {rows:,} rows, {' against '.join(s.label for s in sides)} "
           f"taking turns ({rounds} rounds; M contracts/s, median)")
     _start(sides, section="quotes", rows=rows)
     found = {}
-    for th in (1, 2):
-        for side in sides:
-            side.ask(op="threads", n=th)
-        raw = take_turns(sides, rounds)
-        for key, per in medians(raw)[0].items():
-            found[(key.split(" ")[0], th)] = [rows / t[key] for t in medians(raw)] + [
+    for th, raw in rounds_per_thread_count(sides, threads, rounds):
+        med = medians(raw)
+        for key in med[0]:
+            found[(key.split(" ")[0], th)] = [rows / t[key] for t in med] + [
                 paired_speedup(raw, key)]
     for (model, th), per in found.items():
         print(f"  {model:8s} {th} thread(s): " + "  ".join(
@@ -263,7 +263,8 @@ def main(argv=None) -> int:
     ap.add_argument("--small-threads", default="1,2", help="numba threads of the small "
                     "section, comma-separated")
     ap.add_argument("--quote-rows", type=int, default=500_000)
-    ap.add_argument("--kernel-threads", default="1,2")
+    ap.add_argument("--kernel-threads", default="1,2", help="numba threads of the kernel "
+                    "and quotes sections, comma-separated")
     args = ap.parse_args(argv)
     print(f"volsweep before/after, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     for label, root in (("before", args.before), ("after", args.after)):
@@ -277,7 +278,8 @@ def main(argv=None) -> int:
                 small_section(sides, args.small_rounds, args.calls,
                               threads=[int(t) for t in args.small_threads.split(",")])
             elif section == "quotes":
-                quotes_section(sides, args.quote_rows, args.rounds)
+                quotes_section(sides, args.quote_rows, args.rounds,
+                               threads=[int(t) for t in args.kernel_threads.split(",")])
             elif section == "kernel":
                 kernel_section(sides, args.rows, args.rounds,
                                threads=[int(t) for t in args.kernel_threads.split(",")])
