@@ -58,9 +58,10 @@ def stages(spec, snap, op) -> dict:
 
         def kernel():
             m.kernels["sweep"](prem, *inputs, cp, mask, np.empty(n),
-                               np.empty((len(prep.greeks), n)), np.empty(n, np.int8))
+                               np.empty((rows, n)), np.empty(n, np.int8))
         prem = plan.floats(batch, "premium")
-        g = np.zeros((len(prep.greeks), n))
+        rows = bin(mask).count("1")        # the Greeks the kernel computes
+        g = np.zeros((rows, n))
 
         def outputs():
             st = np.zeros(n, np.int8)
