@@ -51,6 +51,13 @@ _CALL_WORDS = ["call", "c"]
 _PUT_WORDS = ["put", "p"]
 
 
+def numeric_columns(columns: dict | None) -> set:
+    """The column names our numeric inputs are read from under ``columns`` (a CSV reader
+    reads them as numbers whatever its first block holds)."""
+    columns = columns or {}
+    return {columns.get(n, n) for n in NUMERIC_NAMES} - {None}
+
+
 # How each surface spells the options an error names: Python's arguments here; the
 # command line passes its own flags to ``Worded.render``.  ``unmap``: how to say "no
 # column for this input".
@@ -72,6 +79,18 @@ class Worded:
     def render(self, words: dict) -> str:
         unmap = words["unmap"].format(name=self.fields.get("name", ""))
         return self.template.format(option=words[self.option], unmap=unmap, **self.fields)
+
+    def within(self, where: str):
+        """The same message, said of ``where`` (e.g. a backfill's partition)."""
+        return type(self)(self.option, "{where}: " + self.template, where=where,
+                          **self.fields)
+
+    def __reduce__(self):          # rebuilt from its parts (e.g. back from a Dask worker)
+        return _reworded, (type(self), self.option, self.template, self.fields)
+
+
+def _reworded(cls, option, template, fields):
+    return cls(option, template, **fields)
 
 
 class OptionError(Worded, ValueError):
