@@ -6,6 +6,13 @@ stream, or a CSV file (optionally ``.gz``/``.bz2``).  The format is told by the 
 first bytes (CSV by its name).  Files of a directory are read in lexicographic path order
 and rows in file order, so the output order is the input order.  Batches are at most
 ``batch_rows`` rows; nothing reads a whole file.
+
+CSV cells are data: a cell that is not of its column's type (``n.a.`` in a column of
+numbers) is read as null and counted in ``Source.unreadable``, never an error.  Column
+types are inferred from the first block of the first file, except the ``numbers``
+columns (float64 whatever the first block holds) and the columns empty in the first
+block (text).  A file that cannot be parsed (a row with the wrong number of fields) is an
+error naming the file and the line.
 """
 
 from __future__ import annotations
@@ -16,7 +23,6 @@ from collections import Counter
 from dataclasses import dataclass, field
 
 import numpy as np
-
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pcsv
@@ -90,25 +96,20 @@ def _rechunk(batches, max_rows: int):
             yield b.slice(start, max_rows)
 
 
-def _guarded(path, make_iter, schema: pa.Schema | None = None):
-    """Turn read errors in the middle of a file into a one-line StreamError (a CSV
-    reader's row and column numbers as the file's line and the column's name)."""
+def _guarded(path, make_iter):
+    """Turn read errors in the middle of a file into a one-line StreamError."""
     try:
         yield from make_iter()
     except (OSError, pa.ArrowException) as exc:
-        raise StreamError(f"cannot read {path}: {_csv_words(one_line(exc), schema)}") from None
+        raise StreamError(f"cannot read {path}: {_csv_words(one_line(exc))}") from None
 
 
-def _csv_words(text: str, schema: pa.Schema | None) -> str:
-    """Arrow's CSV wording in the user's: "Row #3" is line 3 of the file (the header is
-    line 1), "column #1" the column's name."""
+def _csv_words(text: str) -> str:
+    """A CSV parse error in the user's words: Arrow's "Row #3" is line 3 of the file (the
+    header is line 1; the reader runs serially so that Arrow knows the row)."""
     if "CSV parse error: " in text:       # the parser's own words, without Arrow's preamble
         text = text[text.rindex("CSV parse error: "):]
-    text = re.sub(r"CSV parse error: Row #(\d+): ", r"line \1: ", text)
-    if schema is not None:
-        text = re.sub(r"CSV column #(\d+)", lambda m: f"column {schema.names[int(m[1])]!r}"
-                      if int(m[1]) < len(schema) else m[0], text)
-    return text
+    return re.sub(r"^CSV parse error: Row #(\d+): ", r"line \1: ", text)
 
 
 def open_input(path, batch_rows: int = DEFAULT_BATCH_ROWS, *, partitioning="hive",
@@ -147,7 +148,7 @@ def open_input(path, batch_rows: int = DEFAULT_BATCH_ROWS, *, partitioning="hive
     except StreamError:
         raise
     except (OSError, pa.ArrowException) as exc:
-        raise StreamError(f"cannot read {path}: {_csv_words(one_line(exc), None)}") from None
+        raise StreamError(f"cannot read {path}: {_csv_words(one_line(exc))}") from None
 
     fragments = list(dataset.get_fragments())
     file_schema = dataset.schema
@@ -170,7 +171,7 @@ def open_input(path, batch_rows: int = DEFAULT_BATCH_ROWS, *, partitioning="hive
         for frag in fragments:
             keys = ds.get_partition_keys(frag.partition_expression) if part else {}
             rows = _file_batches(kind, frag.path, batch_rows, file_schema, unreadable)
-            for b in _rechunk(_guarded(frag.path, lambda: rows, file_schema), batch_rows):
+            for b in _rechunk(_guarded(frag.path, lambda: rows), batch_rows):
                 if b.schema != file_schema:
                     why = _schema_diff(b.schema, file_schema)
                     raise StreamError(f"cannot read {frag.path}: its columns differ from "
