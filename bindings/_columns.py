@@ -413,10 +413,10 @@ _ZONED = re.compile(r"^(?P<local>.*\d:\d\d(?::\d\d(?:[.,]\d+)?)?)\s*"
                     r"(?:(?P<utc>[zZ])|(?P<sign>[+-])(?P<hh>\d\d)(?::?(?P<mm>\d\d))?)$")
 
 
-def _parse_time(text: str) -> np.datetime64 | _dt.datetime:
+def _parse_time(text: str) -> np.datetime64:
     """An ISO 8601 date or time; with a zone designator, the instant it names (converted
-    to UTC); without one, taken as UTC.  numpy parses the local part (to nanoseconds,
-    without the warning it gives on a zone)."""
+    to UTC); without one, taken as UTC.  numpy parses the part before the zone (in the
+    unit the text gives, down to nanoseconds; handed the zone, it would warn)."""
     m = _ZONED.match(text.strip())
     local = m.group("local") if m else text.strip()
     try:

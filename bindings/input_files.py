@@ -217,8 +217,9 @@ def _file_batches(kind: str, path: str, batch_rows: int, schema: pa.Schema,
             reader = pa.ipc.open_file(f)
             for i in range(reader.num_record_batches):
                 yield reader.get_batch(i)
-    else:   # csv: blocks of ~1 MB as text, then each column to its type (_csv_types)
-        as_text = pcsv.ConvertOptions(column_types={f.name: pa.string() for f in schema})
+    else:   # csv: blocks of ~1 MB, the columns of _csv_types as text, then each to its type
+        as_text = pcsv.ConvertOptions(column_types={
+            f.name: pa.string() if _via_text(f.type) else f.type for f in schema})
         # serial: Arrow then numbers the rows in its parse errors
         serial = pcsv.ReadOptions(use_threads=False)
         with pcsv.open_csv(path, read_options=serial, convert_options=as_text) as reader:
@@ -233,6 +234,13 @@ def _csv_types(schema: pa.Schema, numbers: set) -> pa.Schema:
     return pa.schema([pa.field(f.name, pa.float64() if f.name in numbers else
                                pa.string() if pa.types.is_null(f.type) else f.type)
                       for f in schema])
+
+
+def _via_text(t: pa.DataType) -> bool:
+    """Types read as text, then converted cell by cell (those Arrow casts from text);
+    other columns (text, binary, times of day) are read as the CSV reader reads them."""
+    return (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
+            or pa.types.is_timestamp(t) or pa.types.is_date(t))
 
 
 def _typed(batch: pa.RecordBatch, schema: pa.Schema, unreadable: Counter) -> pa.RecordBatch:
@@ -256,7 +264,7 @@ _NUMBER_PATTERNS = {
     "float": r"^[+-]?(?:\d+\.?\d*(?:[eE][+-]?\d+)?|\.\d+(?:[eE][+-]?\d+)?|inf(?:inity)?|nan)$",
     "integer": r"^[+-]?\d+$",
 }
-_CAST_ERRORS = (pa.ArrowInvalid, pa.ArrowNotImplementedError)
+_CAST_ERRORS = (pa.ArrowInvalid,)      # a cell that does not parse (not a missing cast)
 
 
 def _cast_cells(text: pa.Array, to: pa.DataType) -> tuple[pa.Array, int]:
