@@ -139,8 +139,10 @@ def _misses() -> int:
 
     from numba.core.registry import CPUDispatcher
 
+    # type(), not isinstance(): isinstance asks an object for its __class__, which some
+    # objects alive in the process (numpy's NpzFile attribute bags) answer with an error
     return sum(o.stats.cache_misses.total() for o in gc.get_objects()
-               if isinstance(o, CPUDispatcher)
+               if issubclass(type(o), CPUDispatcher)
                and getattr(o.py_func, "__module__", "").startswith("volsweep.kernel"))
 
 
