@@ -1,6 +1,7 @@
 """Table-level API: input types, column mapping, statuses per row, schema errors."""
 
 import datetime as dt
+import warnings
 
 import numpy as np
 import pyarrow as pa
@@ -347,3 +348,67 @@ def test_a_mapping_to_a_missing_column_raises_naming_it():
     with pytest.raises(ValueError, match="'mid'"):
         volsweep.implied_vol(t, columns={"premium": "mid"})
     assert volsweep.implied_vol(t).num_rows == 1                     # unmapped: bid/ask
+
+
+# ------------------------------------------------- inputs the model does not read
+
+def _b76_table(**extra):
+    t = _row_table().rename_columns(["forward", "strike", "expiry_years", "rate", "vol",
+                                     "is_call"])
+    for name, values in extra.items():
+        t = t.append_column(name, pa.array(values))
+    return t
+
+
+def test_an_input_of_another_model_mapped_explicitly_is_an_error():
+    # behaviour (README, "Inputs a model does not read"): a mapped forward under bsm, or
+    # a mapped dividend yield under black76, would be silently ignored
+    with pytest.raises(ValueError, match=r"columns= gives column 'F' for 'forward'.*'bsm'"):
+        volsweep.price(_row_table(F=[42.0]), columns={"forward": "F"})
+    with pytest.raises(ValueError, match=r"'q' for 'div_yield'.*'black76'"):
+        volsweep.price(_b76_table(q=[0.02]), model="black76", columns={"div_yield": "q"})
+
+
+def test_an_unread_extra_input_present_by_name_warns_unless_mapped_to_no_column():
+    from volsweep._columns import IgnoredInputWarning
+
+    t = _b76_table(div_yield=[0.02])
+    with pytest.warns(IgnoredInputWarning, match=r"'div_yield'.*columns=\{'div_yield': None\}"):
+        volsweep.prepare("price", t.schema, model="black76")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        quiet = volsweep.price(t, model="black76", columns={"div_yield": None})
+        # another model's underlying present by name is common (chains carry both)
+        volsweep.price(_row_table(forward=[43.0]))
+    # the yield is not read: same price as without the column (same API, same values)
+    assert quiet.column("price").equals(volsweep.price(_b76_table(), model="black76")
+                                        .column("price"))
+
+
+def test_mapping_an_input_to_no_column():
+    # columns={name: None}: no column for that input, even where one has its name
+    t = _row_table(div_yield=[0.05])
+    none = volsweep.price(t, columns={"div_yield": None}).column("price")
+    assert none.equals(volsweep.price(_row_table()).column("price"))     # default 0
+    assert not none.equals(volsweep.price(t).column("price"))
+    both = _row_table(discount=[0.95])                         # rate and discount: choose
+    out = volsweep.price(both, columns={"rate": None})
+    assert out.column("price").equals(volsweep.price(_row_table(discount=[0.95]).drop_columns(
+        ["rate"])).column("price"))
+    with pytest.raises(ValueError, match="columns= maps 'strike' to no column"):
+        volsweep.price(t, columns={"strike": None})
+
+
+def test_option_errors_name_the_python_argument():
+    from volsweep._columns import OptionError
+
+    t = _row_table().drop_columns(["expiry_years"]).append_column(
+        "expiry", pa.array([dt.datetime(2031, 1, 1)]))
+    with pytest.raises(OptionError, match=r"give as_of= a time"):
+        volsweep.price(t)
+    with pytest.raises(OptionError, match=r"as_of= 'soon' is neither a column"):
+        volsweep.price(t, as_of="soon")
+    with pytest.raises(OptionError, match=r"columns= names an unknown input 'strik'") as exc:
+        volsweep.price(t, columns={"strik": "K"})
+    assert exc.value.render({"columns": "--map", "unmap": ""}).startswith(
+        "--map names an unknown input 'strik'")
