@@ -28,6 +28,8 @@ from collections import Counter
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from volsweep.kernel.registry import DEFAULT_MODEL
+
 
 class CliError(Exception):
     """A user-facing error: printed as one line, exit status 2."""
@@ -138,7 +140,7 @@ def cmd_demo(args) -> int:
     print("loading compiled kernels (the first run on a machine compiles them: minutes)",
           flush=True)
     t0 = time.perf_counter()
-    volsweep.warmup(models="bsm")
+    volsweep.warmup(models=DEFAULT_MODEL)
     print(f"kernels ready in {time.perf_counter() - t0:.1f} s")
     cols = {"vol": "true_vol"}
     quotes = snap.drop_columns(["bid", "ask"])
@@ -329,11 +331,11 @@ def _map_args(p) -> None:
 
 def _model_arg(p) -> None:
     """--model: the registry's models, each with its underlying and one-line doc."""
-    from volsweep.kernel.registry import MODELS
+    from volsweep.kernel.registry import DEFAULT_MODEL, MODELS
 
     lines = "; ".join(f"{m.name}: {m.doc}, on {m.underlying}"
                       + "".join(f" with {x.name}" for x in m.extras) for m in MODELS.values())
-    p.add_argument("--model", default="bsm", choices=list(MODELS),
+    p.add_argument("--model", default=DEFAULT_MODEL, choices=list(MODELS),
                    help=f"{lines.replace('%', '%%')} (default: %(default)s)")
 
 

@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 
 import pyarrow.parquet as pq
 
+from volsweep.kernel.registry import DEFAULT_MODEL
 from ._columns import OptionError, numeric_columns
 from .atomic_parquet import stale_temps
 from .file_errors import StreamError, one_line
@@ -199,7 +200,7 @@ def worker_environ() -> dict:
     return env
 
 
-def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as_of=None,
+def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None, as_of=None,
              quotes="auto", keep=None, scheduler=None, n_workers=None,
              batch_rows=DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
     """Sweep every partition of the dataset ``src`` into the same partitions under ``dst``.

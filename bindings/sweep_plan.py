@@ -10,6 +10,7 @@ from dataclasses import dataclass
 
 import pyarrow as pa
 
+from volsweep.kernel.registry import DEFAULT_MODEL
 from ._columns import KNOWN_NAMES, OptionError
 from ._output import check_no_clash
 from .atomic_parquet import dictionary_columns
@@ -82,7 +83,7 @@ class SweepPlan:
     prepared: object
 
     @classmethod
-    def build(cls, schema: pa.Schema, *, model="bsm", which=None, units="raw", columns=None,
+    def build(cls, schema: pa.Schema, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None,
               as_of=None, quotes="auto", keep=None) -> "SweepPlan":
         from .api import prepare
 

@@ -10,7 +10,8 @@ bindings used to make three implied-vol passes and a Greeks pass).
 Statuses (priority in kernel/status.py): the input problems of a row (and of a side's own
 quote: null, NaN or +-inf) stay; above the premium's own problems, a crossed quote
 (bid > ask) is ``crossed_quote`` on every side without an input problem, and a bid at or
-below zero is ``zero_bid`` on the bid and the mid (the ask keeps its vol).  ``iv_spread_uncertainty`` = (ask - bid) / 2 / vega at the mid vol,
+below zero is ``zero_bid`` on the bid and the mid (the ask keeps its vol).
+``iv_spread_uncertainty`` = (ask - bid) / 2 / vega at the mid vol,
 NaN where the mid has no vol.
 """
 

@@ -96,6 +96,7 @@ MODELS = {
 }
 
 MODEL_NAMES = tuple(MODELS)
+DEFAULT_MODEL = "bsm"     # the model of every function and command that is not told one
 
 # What each Greek is, and its units: raw (the analytic derivative) and desk (raw times
 # greeks.DESK_SCALE).  "underlying" is the model's underlying input (spot or forward).
