@@ -262,9 +262,9 @@ def test_implied_vol_inverts_the_handbook_price():
 
 
 @pytest.mark.parametrize("premium, status", [
-    (1.0, "below_intrinsic"),          # intrinsic is S - K e^{-rT} = 3.95
-    (-0.5, "below_intrinsic"),
-    (42.0, "above_upper_bound"),       # a call is worth less than the spot (common practice)
+    (1.0, "premium_too_low"),          # intrinsic is S - K e^{-rT} = 3.95
+    (-0.5, "premium_too_low"),
+    (42.0, "premium_too_high"),        # a call is worth less than the spot (common practice)
     (np.nan, "missing_input"),
     (np.inf, "non_finite_input"),
 ])

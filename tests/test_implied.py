@@ -247,17 +247,17 @@ def test_a_zero_premium_out_of_the_money_gives_no_time_value():
     assert _one(0.0, F=100.0, K=130.0)[1] == S.NO_TIME_VALUE
 
 
-def test_a_premium_below_discounted_intrinsic_gives_below_intrinsic():
+def test_a_premium_below_discounted_intrinsic_is_too_low():
     iv, s = _one(np.nextafter(0.5 * 20.0, 0.0), F=120.0, K=100.0, D=0.5)
     assert s == S.BELOW_INTRINSIC and math.isnan(iv)
 
 
-def test_a_negative_premium_gives_below_intrinsic():
+def test_a_negative_premium_is_too_low():
     assert _one(-1e-3, F=100.0, K=130.0)[1] == S.BELOW_INTRINSIC
     assert _one(-1e-3, F=100.0, K=130.0, cp=-1)[1] == S.BELOW_INTRINSIC
 
 
-def test_a_premium_at_the_upper_bound_gives_above_upper_bound():
+def test_a_premium_at_the_upper_bound_is_too_high():
     # calls are worth less than D F, puts less than D K (common practice: no-arbitrage bounds)
     assert _one(0.5 * 100.0, F=100.0, K=80.0, D=0.5)[1] == S.ABOVE_UPPER_BOUND
     assert _one(0.5 * 80.0, F=100.0, K=80.0, D=0.5, cp=-1)[1] == S.ABOVE_UPPER_BOUND
