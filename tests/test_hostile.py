@@ -29,7 +29,7 @@ from volsweep.cli import main as cli_main
 from test_fuzz import check_invariants, same_table
 
 # derandomised by the suite's hypothesis profile (tests/conftest.py)
-PROPERTY = settings(max_examples=40,
+PROPERTY = settings(max_examples=80,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 
 SPECIAL = [np.nan, np.inf, -np.inf, 0.0, -0.0, 5e-324, 2.2250738585072014e-308, 1e-300,
@@ -253,7 +253,7 @@ def test_empty_and_one_row_inputs(op):
                _call(op, model, {"id": [0], **one}))
 
 
-@PROPERTY
+@settings(PROPERTY, max_examples=300)
 @given(expiry=st.one_of(st.datetimes(), st.none()),
        as_of=st.datetimes(),
        unit=st.sampled_from(["s", "ms", "us", "date"]),
@@ -360,7 +360,7 @@ _WRONG_TYPES = {
 
 @pytest.mark.parametrize("model", ["bsm", "black76"])
 @pytest.mark.parametrize("op", ["price", "iv", "iv_bid_ask", "greeks_two", "sweep"])
-@settings(PROPERTY, max_examples=40)
+@settings(PROPERTY, max_examples=150)
 @given(data=st.data())
 def test_schema_damage_raises_naming_the_column(op, model, data):
     table = _good_table(op, model)
@@ -460,7 +460,7 @@ def test_duplicated_as_of_column_and_bad_arguments():
 
 # ----------------------------------------------------------------- command line
 
-@settings(PROPERTY, max_examples=8)
+@settings(PROPERTY, max_examples=20)
 @given(data=st.data())
 def test_cli_price_keeps_every_hostile_row(data, tmp_path_factory):
     table = data.draw(hostile_tables("price", "bsm", min_rows=1, max_rows=40))

@@ -155,7 +155,7 @@ _rt = st.tuples(
 )
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=600, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(_rt, min_size=20, max_size=20))
 def test_round_trip_price_iv_price(rows):
     # source: common practice (invert our own price), against the bar of this file at that
