@@ -13,7 +13,7 @@ __version__ = "0.1.0"
 # public name -> module that defines it
 _EXPORTS = {
     "price": "api", "implied_vol": "api", "greeks": "api", "sweep": "api",
-    "prepare": "api", "backfill": "backfill", "warmup": "warmup",
+    "prepare": "api", "backfill": "dask_backfill", "warmup": "loader",
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
 }

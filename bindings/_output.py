@@ -20,12 +20,11 @@ def new_array(shape, dtype=np.float64) -> np.ndarray:
 
     Output columns are large and fresh on every call (all Greeks of 1M rows: 128 MB).
     From numpy, each such allocation is a new mapping the OS must fault in and zero, and
-    with transparent huge pages a fault can stall on memory compaction (measured: a
-    128 MB write 13 ms from np.empty, stalls to 308 ms, 5 ms from Arrow's pool, which
-    keeps and reuses freed memory; a sweep over 1M rows early in a process 5-10 M rows/s
-    from np.empty).  The Arrow columns then wrap the same memory without a copy.
-    Small outputs (up to 64 KiB) come from numpy, whose heap reuses them as well: there
-    the pool's allocation (~4 us) would cost more than the kernel of a 100-row batch.
+    with transparent huge pages a fault can stall on memory compaction; Arrow's pool keeps
+    and reuses freed memory (benchmarks/RESULTS.md has the measured write times).  The
+    Arrow columns then wrap the same memory without a copy.  Small outputs (up to 64 KiB)
+    come from numpy, whose heap reuses them as well: there the pool's allocation would
+    cost more than the kernel of a 100-row batch.
     """
     dtype = np.dtype(dtype)
     count = math.prod(shape) if isinstance(shape, tuple) else int(shape)
@@ -57,8 +56,7 @@ def status_column(codes: np.ndarray) -> pa.DictionaryArray:
     """Dictionary-encoded status over the int8 codes (no copy).
 
     The codes are the kernel's (every row written, every value one of ``status.NAMES``),
-    so Arrow's bounds check of the indices (a pass over the column, ~1.5 ms per 2M rows)
-    is skipped; tests/test_api.py checks every status value against the vocabulary.
+    so Arrow's bounds check of the indices (a pass over the column) is skipped; tests/test_api.py checks every status value against the vocabulary.
     """
     codes = np.ascontiguousarray(codes, dtype=np.int8)
     indices = pa.Array.from_buffers(pa.int8(), len(codes), [None, pa.py_buffer(codes)])
@@ -82,8 +80,8 @@ def output_schema(schema: pa.Schema, outputs) -> pa.Schema:
 def append(batch: pa.RecordBatch, schema: pa.Schema, columns: dict) -> pa.RecordBatch:
     """``batch`` with ``columns`` appended, as ``schema`` (its fields followed by theirs).
 
-    A few columns are appended one by one (~1.5 us each); many at once from the whole list
-    (wrapping every input column as a Python object costs ~10 us for 16 of them)."""
+    A few columns are appended one by one; many at once from the whole list (wrapping
+    every input column as a Python object costs more than a few appends)."""
     if len(columns) <= _FEW_COLUMNS:
         n0 = batch.num_columns
         for i, arr in enumerate(columns.values()):

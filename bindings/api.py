@@ -27,6 +27,7 @@ from volsweep.kernel import registry as _registry
 from volsweep.kernel._jit import BLOCK as _BLOCK
 
 from ._columns import ColumnPlan
+from .loader import load_kernel, served_mask
 from ._input import as_batches
 from ._output import (append, check_no_clash, float_column, new_array, output_schema,
                       status_column, validity_buffer)
@@ -142,13 +143,19 @@ class Prepared:
         check_no_clash(schema, self.outputs)
         self.out_schema = output_schema(schema, self.outputs)
         self.used = list(dict.fromkeys(self.plan.source.values()))
-        self.mask = _greeks.greek_mask(names, model) if names else 0
-        if quotes:                       # the bid/ask kernel also needs vega at the mid
-            self.mask |= 1 << _VEGA
         kind = "bid_ask" if quotes else operation
         if kind == "sweep" and not names:      # no Greeks: the implied-vol kernel alone
             kind = "implied_vol"
+        self.mask = 0
+        if names or quotes:
+            # the compiled Greek set serving the request (the bid/ask kernel needs vega)
+            want = _greeks.greek_mask(names, model) if names else 0
+            self.mask = served_mask(model, want | ((1 << _VEGA) if quotes else 0))
+        served = _greeks.greek_names(self.mask)
+        self.rows = [served.index(g) for g in names]          # rows of out to keep
+        self.desk = ([_greeks.DESK_SCALE[g] for g in names] if units == "desk" else None)
         self._compute = getattr(self, "_" + kind)
+        load_kernel(self.model.name, kind, self.mask)   # says so on stderr if it compiles
 
     def __call__(self, batch: pa.RecordBatch) -> pa.RecordBatch:
         if not isinstance(batch, pa.RecordBatch):
@@ -157,8 +164,11 @@ class Prepared:
         if not batch.schema.equals(self.in_schema):
             raise ValueError(f"this {self.operation} was prepared for another schema: "
                              "call prepare() with this batch's schema")
-        with _kernel_launch():
+        if _workqueue is False:          # thread-safe threading layer: no lock (the usual)
             cols = self._compute(batch)
+        else:
+            with _kernel_launch():
+                cols = self._compute(batch)
         return append(batch, self.out_schema, cols)
 
     # ------------------------------------------------------------ per operation
@@ -171,12 +181,13 @@ class Prepared:
                                                    for x in self.model.extras)
         return inputs, plan.call_put(batch)
 
-    def _greek_out(self, g, n_nonfinite, ok, rows=None) -> dict:
-        if rows is not None:
-            g = g[rows]
-        if self.units == "desk" and self.greeks:
-            g *= _greeks.desk_factors(_greeks.greek_mask(self.greeks, self.model.name))[:, None]
-        return _greek_columns(self.greeks, g, ok, n_nonfinite)
+    def _greek_out(self, g, n_nonfinite, ok) -> dict:
+        """Output columns of the requested Greeks from the served set's rows ``g``."""
+        picked = [g[j] for j in self.rows]
+        if self.desk is not None:
+            for row, factor in zip(picked, self.desk):
+                row *= factor
+        return _greek_columns(self.greeks, picked, ok, n_nonfinite)
 
     def _price(self, batch):
         inputs, cp = self._inputs(batch)
@@ -196,7 +207,7 @@ class Prepared:
     def _greeks(self, batch):
         inputs, cp = self._inputs(batch)
         n = batch.num_rows
-        out, st = new_array((len(self.greeks), n)), new_array(n, np.int8)
+        out, st = new_array((bin(self.mask).count("1"), n)), new_array(n, np.int8)
         n_nonfinite = self.model.kernels["greeks"](*inputs, self.plan.floats(batch, "vol"),
                                                    cp, self.mask, out, st)
         cols = self._greek_out(out, n_nonfinite, st == 0)
@@ -207,7 +218,7 @@ class Prepared:
         inputs, cp = self._inputs(batch)
         n = batch.num_rows
         iv, st = new_array(n), new_array(n, np.int8)
-        out = new_array((len(self.greeks), n))
+        out = new_array((bin(self.mask).count("1"), n))
         n_nonfinite = self.model.kernels["sweep"](self.plan.floats(batch, "premium"), *inputs,
                                                   cp, self.mask, iv, out, st)
         ok = st == 0
@@ -230,16 +241,13 @@ class Prepared:
                 "iv": float_column(iv, ok), "iv_spread_uncertainty": _ok_column(unc, ok),
                 "status_bid": status_column(st_b), "status_ask": status_column(st_a)}
         if self.greeks:
-            rows = [j for j, name in enumerate(_greeks.greek_names(self.mask))
-                    if name in self.greeks]
-            cols.update(self._greek_out(out, n_nonfinite, ok,
-                                        None if len(rows) == len(out) else rows))
+            cols.update(self._greek_out(out, n_nonfinite, ok))
         cols["status"] = status_column(st)
         return cols
 
 
 _PREPARED: list = []          # recent (options key, schema, Prepared), newest last
-_PREPARED_MAX = 32
+_PREPARED_MAX = 64
 
 
 def _freeze(value):
@@ -263,7 +271,7 @@ def prepare(operation: str, schema: pa.Schema, *, model: str = "bsm", which=None
     except TypeError:            # an unhashable option (e.g. an exotic as_of): no caching
         key = None
     if key is not None:
-        # schemas compared by equals (C, ~0.1 us) rather than hashed (~4 us a schema)
+        # schemas compared by equals (one C call) rather than hashed (a walk of the schema)
         for k, sch, prep in reversed(_PREPARED):
             if k == key and sch.equals(schema, check_metadata=True):
                 return prep

@@ -175,7 +175,7 @@ def cmd_backfill(args) -> int:
         import distributed  # noqa: F401
     except ImportError:
         raise CliError("volsweep backfill needs Dask: pip install 'volsweep[dask]'") from None
-    from .backfill import backfill
+    from .dask_backfill import backfill
     from .progress import Progress
     from .status_counts import status_table
 
@@ -183,7 +183,7 @@ def cmd_backfill(args) -> int:
         raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
     if args.workers is not None and args.workers < 1:
         raise CliError(f"--workers must be >= 1, got {args.workers}")
-    from .backfill import find_partitions
+    from .dask_backfill import find_partitions
 
     total = len(find_partitions(args.src))
     res = backfill(args.src, args.dst, scheduler=args.scheduler, n_workers=args.workers,

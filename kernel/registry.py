@@ -136,6 +136,21 @@ OPERATIONS = {
 
 KERNEL_OPERATIONS = ("price", "implied_vol", "greeks", "sweep", "bid_ask")
 
+# The Greek sets the per-set loops (Greeks, sweep, bid/ask) are compiled for, per model
+# (each restricted to the Greeks the model defines; None: all of them).  Any other set is
+# served by the smallest of these that holds it and the extra Greeks are dropped, so the
+# number of compiled variants is bounded and ``volsweep.warmup()`` can load them all.
+GREEK_SETS = (("vega",), ("delta", "gamma", "vega", "theta", "rho"), None)
+
+
+def greek_set_masks(name) -> tuple:
+    """Masks of ``GREEK_SETS`` for model ``name``, smallest first, without repeats."""
+    m = model(name)
+    masks = {_greeks.greek_mask(m.greeks if s is None else
+                                tuple(g for g in s if g in m.greeks), name)
+             for s in GREEK_SETS}
+    return tuple(sorted(masks, key=lambda k: (bin(k).count("1"), k)))
+
 
 def model(name) -> Model:
     """The registry entry of ``name``; ValueError naming the known models otherwise."""

@@ -20,8 +20,8 @@ from volsweep.sweep_plan import SWEEP_STAMP_KEY, SweepPlan
 from volsweep.cli import main
 from volsweep.data_gen import write_history
 
-# the module (volsweep.backfill is the function, as users call it)
-bf = importlib.import_module("volsweep.backfill")
+# the module behind volsweep.backfill (the function, as users call it)
+bf = importlib.import_module("volsweep.dask_backfill")
 
 distributed = pytest.importorskip("distributed")
 pytestmark = pytest.mark.dask

@@ -62,7 +62,7 @@ def test_facade_imports_arrow_modules_only_when_used():
 def test_product_never_imports_benchmarks():
     res = subprocess.run([sys.executable, "-c", textwrap.dedent("""
         import sys
-        import volsweep, volsweep.cli, volsweep.api, volsweep.warmup
+        import volsweep, volsweep.cli, volsweep.api, volsweep.loader
         volsweep.backfill
         print(sorted(k for k in sys.modules if k.startswith("benchmarks")))
     """)], capture_output=True, text=True, timeout=600)
