@@ -55,6 +55,7 @@ class ColumnPlan:
     as_of_value: object = None                    # scalar as_of (seconds, ns), if given
     quote: str = "none"                           # "premium", "bid_ask" or "none"
     plain: set = field(default_factory=set)       # logical inputs stored as plain float64
+    index: dict = field(default_factory=dict)     # logical name -> column position
 
     # ------------------------------------------------------------------ building
     @classmethod
@@ -149,6 +150,7 @@ class ColumnPlan:
     def _check_types(self, schema: pa.Schema) -> None:
         for logical, col in self.source.items():
             raw = schema.field(col).type
+            self.index[logical] = schema.get_field_index(col)   # unique: dupes refused
             if raw == pa.float64():
                 self.plain.add(logical)     # read without decoding or casting
             t = _value_type(raw)
@@ -170,7 +172,7 @@ class ColumnPlan:
 
     # ---------------------------------------------------------------- extraction
     def floats(self, batch: pa.RecordBatch, logical: str) -> np.ndarray:
-        col = batch.column(self.source[logical])
+        col = batch.column(self.index[logical])
         if logical in self.plain and not col.null_count:
             return col.to_numpy()           # zero-copy view of a plain float64 column
         return _to_float64(col)

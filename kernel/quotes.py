@@ -89,12 +89,19 @@ def _bsm_template(bid, ask, mid, spot, K, T, D, q, cp, iv_bid, iv_ask, iv, unc, 
 _TEMPLATES = {"black76": _b76_template, "bsm": _bsm_template}
 
 
+_IV_ROWS = {"black76": _implied._black76_iv_rows, "bsm": _implied._bsm_iv_rows}
+
+
+def _vega_row(mask):
+    """The row of vega in ``out`` for a mask holding it."""
+    return bin(mask & (_VEGA - 1)).count("1")
+
+
 @functools.lru_cache(maxsize=None)
 def _kernel(model, mask):
     greek_rows, _ = _greeks._kernel(model, mask)
-    vega_row = bin(mask & (_VEGA - 1)).count("1")
     return loop(specialise(_TEMPLATES[model], f"bid_ask_{model}_{mask:04x}", GREEKS=greek_rows,
-                           VEGA_ROW=vega_row))
+                           VEGA_ROW=_vega_row(mask)))
 
 
 def mid_price(bid, ask):
@@ -122,8 +129,17 @@ def _run(model, bid, ask, inputs, cp, mask, outs):
         _args.output(name, arr, (n,), np.int8)
     (mid,) = _args.floats(mid_price(bid, ask))
     scratch = np.empty(n, np.int8)     # the Greeks' own statuses (the iv's take priority)
-    _kernel(model, mask)(bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out,
-                         st_bid, st_ask, status, scratch)
+    if n <= BLOCK:          # one block: the same row loops, without a parallel launch
+        iv_rows = _IV_ROWS[model]
+        iv_rows(0, n, bid, *inputs, cp, iv_bid, st_bid)
+        iv_rows(0, n, ask, *inputs, cp, iv_ask, st_ask)
+        iv_rows(0, n, mid, *inputs, cp, iv, status)
+        _greeks._kernel(model, mask)[0](0, n, *inputs, iv, cp, out, scratch)
+        _quote_rows(0, n, bid, ask, iv_bid, iv_ask, iv, st_bid, st_ask, status,
+                    out[_vega_row(mask)], unc)
+    else:
+        _kernel(model, mask)(bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out,
+                             st_bid, st_ask, status, scratch)
     return _greeks.take_nonfinite_flags(scratch)
 
 

@@ -69,7 +69,11 @@ def black76_sweep(premium, F, K, T, D, cp, mask, iv_out, out, status):
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
     scratch = np.empty(n, np.int8)    # the Greeks' own statuses (the iv's take priority)
-    _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status, scratch)
+    if n <= BLOCK:                    # one block: the row loops, without a parallel launch
+        _implied._black76_iv_rows(0, n, premium, F, K, T, D, cp, iv_out, status)
+        _greeks._kernel("black76", mask)[0](0, n, F, K, T, D, iv_out, cp, out, scratch)
+    else:
+        _kernel("black76", mask)(premium, F, K, T, D, cp, iv_out, out, status, scratch)
     return _greeks.take_nonfinite_flags(scratch)
 
 
@@ -80,5 +84,9 @@ def bsm_sweep(premium, spot, K, T, D, q, cp, mask, iv_out, out, status):
     cp = _args.codes(n, cp)
     mask = _outputs(n, mask, iv_out, out, status)
     scratch = np.empty(n, np.int8)
-    _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status, scratch)
+    if n <= BLOCK:
+        _implied._bsm_iv_rows(0, n, premium, spot, K, T, D, q, cp, iv_out, status)
+        _greeks._kernel("bsm", mask)[0](0, n, spot, K, T, D, q, iv_out, cp, out, scratch)
+    else:
+        _kernel("bsm", mask)(premium, spot, K, T, D, q, cp, iv_out, out, status, scratch)
     return _greeks.take_nonfinite_flags(scratch)
