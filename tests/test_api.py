@@ -12,9 +12,10 @@ from volsweep import _columns
 from volsweep.kernel import black
 from volsweep.kernel import status as _status
 
-# Hull, "Options, Futures, and Other Derivatives", worked example (from memory; value
-# re-derived with mpmath: 4.759422392871532): S=42, K=40, r=10%, sigma=20%, T=0.5.
-HULL_CALL = 4.759422392871532
+# Hull, "Options, Futures, and Other Derivatives", worked example (from memory): S=42,
+# K=40, r=10%, sigma=20%, T=0.5, no dividends.  Value from mpmath (BSM closed form at 50
+# digits on the exact double inputs): 4.7594223928715333950652..., rounded to nearest.
+HULL_CALL = 4.759422392871533
 
 
 def _row_table(**over):
@@ -263,9 +264,9 @@ def test_implied_vol_inverts_the_handbook_price():
 
 
 @pytest.mark.parametrize("premium, status", [
-    (1.0, "below_intrinsic"),          # intrinsic is S - K e^{-rT} = 3.95
-    (-0.5, "below_intrinsic"),
-    (42.0, "above_upper_bound"),       # a call is worth less than the spot (common practice)
+    (1.0, "premium_too_low"),          # intrinsic is S - K e^{-rT} = 3.95
+    (-0.5, "premium_too_low"),
+    (42.0, "premium_too_high"),        # a call is worth less than the spot (common practice)
     (np.nan, "missing_input"),
     (np.inf, "non_finite_input"),
 ])
@@ -279,7 +280,10 @@ def test_implied_vol_status_per_row(premium, status):
 
 
 def test_implied_vol_from_bid_ask_gives_three_vols_and_statuses():
-    put = 0.8085993729000922  # the Hull example's put at 20% (put-call parity from HULL_CALL)
+    # the Hull example's put at 20%, from mpmath (BSM closed form at 50 digits on the
+    # exact double inputs, not parity from HULL_CALL): 0.80859937290009365311..., rounded
+    # to nearest
+    put = 0.8085993729000936
     t = pa.table(dict(spot=[42.0] * 4, strike=[40.0] * 4, expiry_years=[0.5] * 4,
                       rate=[0.1] * 4, is_call=[True, False, True, True],
                       bid=[HULL_CALL - 0.05, put - 0.02, 5.0, 0.0],

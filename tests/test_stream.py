@@ -159,7 +159,7 @@ def test_csv_with_call_put_words_and_remapped_names(tmp_path):
     assert got.column_names[:6] == ["S", "K", "T", "r", "type", "mid"]
     iv = got.column("iv").to_pylist()
     assert abs(iv[0] - 0.2) < 1e-4 and abs(iv[1] - 0.2) < 1e-4 and iv[2] is None
-    assert got.column("status").to_pylist() == ["ok", "ok", "below_intrinsic"]
+    assert got.column("status").to_pylist() == ["ok", "ok", "premium_too_low"]
 
 
 def test_empty_input_gives_empty_output_with_the_output_schema(snap, tmp_path):
