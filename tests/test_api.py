@@ -38,7 +38,7 @@ def _kernel_bsm(S, K, T, r, q, vol, cp):
 def test_price_table_matches_handbook_value():
     t = volsweep.price(_row_table())
     assert t.column("status").to_pylist() == ["ok"]
-    assert t.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+    assert t.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
 
 
 def test_output_keeps_input_columns_in_order_and_appends_outputs():
@@ -165,7 +165,7 @@ def test_bad_row_gets_its_reason_and_a_null_price(over, status):
     out = volsweep.price(pa.table(cols))
     assert out.column("status").to_pylist() == ["ok", status]
     assert out.column("price")[1].as_py() is None
-    assert out.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+    assert out.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
 
 
 def test_zero_vol_prices_discounted_intrinsic():
@@ -240,7 +240,7 @@ def test_expiry_years_preferred_over_timestamps_unless_expiry_is_mapped():
                       expiry_years=[0.5],
                       expiry=pa.array([as_of + dt.timedelta(days=73)], pa.timestamp("s"))))
     half = volsweep.price(t, as_of=as_of).column("price")[0].as_py()
-    assert half == pytest.approx(HULL_CALL, rel=1e-14)
+    assert half == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
     mapped = volsweep.price(t, as_of=as_of, columns={"expiry": "expiry"})
     assert mapped.column("price")[0].as_py() < half  # 0.2 years, not 0.5
     with pytest.raises(ValueError, match="expiry"):

@@ -250,22 +250,22 @@ def test_a_zero_premium_out_of_the_money_gives_no_time_value():
 
 def test_a_premium_below_discounted_intrinsic_is_too_low():
     iv, s = _one(np.nextafter(0.5 * 20.0, 0.0), F=120.0, K=100.0, D=0.5)
-    assert s == S.BELOW_INTRINSIC and math.isnan(iv)
+    assert s == S.PREMIUM_TOO_LOW and math.isnan(iv)
 
 
 def test_a_negative_premium_is_too_low():
-    assert _one(-1e-3, F=100.0, K=130.0)[1] == S.BELOW_INTRINSIC
-    assert _one(-1e-3, F=100.0, K=130.0, cp=-1)[1] == S.BELOW_INTRINSIC
+    assert _one(-1e-3, F=100.0, K=130.0)[1] == S.PREMIUM_TOO_LOW
+    assert _one(-1e-3, F=100.0, K=130.0, cp=-1)[1] == S.PREMIUM_TOO_LOW
 
 
 def test_a_premium_at_the_upper_bound_is_too_high():
     # calls are worth less than D F, puts less than D K (common practice: no-arbitrage bounds)
-    assert _one(0.5 * 100.0, F=100.0, K=80.0, D=0.5)[1] == S.ABOVE_UPPER_BOUND
-    assert _one(0.5 * 80.0, F=100.0, K=80.0, D=0.5, cp=-1)[1] == S.ABOVE_UPPER_BOUND
+    assert _one(0.5 * 100.0, F=100.0, K=80.0, D=0.5)[1] == S.PREMIUM_TOO_HIGH
+    assert _one(0.5 * 80.0, F=100.0, K=80.0, D=0.5, cp=-1)[1] == S.PREMIUM_TOO_HIGH
     # the comparison is exact: 0.9 * 100 rounds to 90.0, below the exact D F
     assert _one(0.9 * 100.0, F=100.0, K=80.0, D=0.9)[1] == S.OK
-    assert _one(np.nextafter(0.9 * 100.0, 1e3), F=100.0, K=80.0, D=0.9)[1] == S.ABOVE_UPPER_BOUND
-    assert _one(1e6, F=100.0, K=80.0)[1] == S.ABOVE_UPPER_BOUND
+    assert _one(np.nextafter(0.9 * 100.0, 1e3), F=100.0, K=80.0, D=0.9)[1] == S.PREMIUM_TOO_HIGH
+    assert _one(1e6, F=100.0, K=80.0)[1] == S.PREMIUM_TOO_HIGH
 
 
 def test_the_largest_premium_below_the_upper_bound_is_ok():
@@ -324,7 +324,7 @@ def test_statuses_row_by_row_in_one_call():
     K = np.array([100.0, 100.0, 100.0, 80.0, 100.0, 100.0])
     cp = np.array([1, 1, 1, 1, 1, 0], np.int8)
     iv, stt = iv76(prem, F, K, 1.0, 1.0, cp)
-    assert list(stt) == [S.OK, S.MISSING_INPUT, S.BELOW_INTRINSIC, S.ABOVE_UPPER_BOUND,
+    assert list(stt) == [S.OK, S.MISSING_INPUT, S.PREMIUM_TOO_LOW, S.PREMIUM_TOO_HIGH,
                          S.NO_TIME_VALUE, S.MISSING_INPUT]
     assert np.isfinite(iv[0]) and np.isnan(iv[1:]).all()
 
