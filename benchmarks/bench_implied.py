@@ -1,5 +1,11 @@
-"""Implied-vol throughput and accuracy: our kernel vs its own price kernel, a vectorised
+"""Implied-vol throughput and accuracy: our kernels vs their own price kernels, a vectorised
 numpy Newton and a per-contract scipy root-finder, on the same contracts in one run.
+
+Every model of the registry (``volsweep.kernel.registry.MODELS``) gets its implied-vol and
+price kernels timed on the same contracts, expressed in its own inputs (premiums from its
+own price kernel).  The reference implementations (numpy Newton, scipy brentq) and the
+tolerance are Black-76's, on the forward: they run for the models in ``REFERENCE_MODELS``
+and are skipped, saying so, for the others.
 
     .venv/bin/python benchmarks/bench_implied.py [--rows 2000000] [--repeat 5]
 
@@ -17,17 +23,27 @@ import math
 import time
 
 import numpy as np
+import pytest
 from scipy.optimize import brentq
 from scipy.special import ndtr
 
-from volsweep.kernel import black, implied
+from benchmarks._cases import model_inputs
+from volsweep.kernel import registry
 
 EPS = 2.0 ** -52
 SQRT2PI = math.sqrt(2.0 * math.pi)
 
 
-def make_contracts(n, seed=11):
-    """Seeded synthetic Black-76 contracts, premiums from our price kernel (valid rows)."""
+# the models whose premiums the Black-76 references below invert (on the forward)
+REFERENCE_MODELS = ("black76",)
+
+
+def make_contracts(n, seed=11, model=REFERENCE_MODELS[0]):
+    """Seeded synthetic contracts for the registry model ``model`` (the same forwards,
+    strikes, expiries and vols for every model; spot and yield consistent with the
+    forward), premiums from its own price kernel, valid rows only.  Keys: the registry's
+    input names (``forward``, ``spot``, ``div_yield``), ``F`` (the forward), ``K``, ``T``,
+    ``D``, ``vol``, ``cp``, ``premium``."""
     rng = np.random.default_rng(seed)
     F = np.exp(rng.uniform(np.log(5.0), np.log(500.0), n))
     T = np.exp(rng.uniform(np.log(2.0 / 365.0), np.log(3.0), n))
@@ -37,13 +53,17 @@ def make_contracts(n, seed=11):
     K = F * np.exp(-x)
     D = np.exp(-0.03 * T)
     cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
+    q = rng.uniform(0.0, 0.04, n)
+    c = dict(F=F, forward=F, spot=F * D / np.exp(-q * T), div_yield=q, K=K, T=T, D=D,
+             vol=vol, cp=cp)
     price = np.empty(n)
     st = np.empty(n, dtype=np.int8)
-    black.black76_price(F, K, T, D, np.zeros(n), vol, cp, price, st)
+    registry.model(model).kernels["price"](*model_inputs(registry.model(model), c), vol, cp,
+                                          price, st)
     intrinsic = D * np.maximum(np.where(cp > 0, F - K, K - F), 0.0)
     good = (st == 0) & (price > intrinsic) & (price - intrinsic > 1e-300 * F)
-    return {k: np.ascontiguousarray(v[good]) for k, v in
-            dict(F=F, K=K, T=T, D=D, vol=vol, cp=cp, premium=price).items()}
+    c["premium"] = price
+    return {k: np.ascontiguousarray(v[good]) for k, v in c.items()}
 
 
 def tolerance(c):
@@ -60,19 +80,19 @@ def tolerance(c):
 
 # ---------------------------------------------------------------- the implementations
 
-def ours_iv(c, out=None):
+def ours_iv(c, out=None, model=REFERENCE_MODELS[0]):
+    m = registry.model(model)
     iv = np.empty_like(c["F"]) if out is None else out
     st = np.empty(c["F"].shape, dtype=np.int8)
-    implied.black76_iv(c["premium"], c["F"], c["K"], c["T"], c["D"], np.zeros(iv.shape), c["cp"],
-                       iv, st)
+    m.kernels["implied_vol"](c["premium"], *model_inputs(m, c), c["cp"], iv, st)
     return iv
 
 
-def ours_price(c):
+def ours_price(c, model=REFERENCE_MODELS[0]):
+    m = registry.model(model)
     p = np.empty_like(c["F"])
     st = np.empty(c["F"].shape, dtype=np.int8)
-    black.black76_price(c["F"], c["K"], c["T"], c["D"], np.zeros(p.shape), c["vol"], c["cp"],
-                        p, st)
+    m.kernels["price"](*model_inputs(m, c), c["vol"], c["cp"], p, st)
     return p
 
 
@@ -144,41 +164,41 @@ def main(argv=None):
     ap.add_argument("--brentq-rows", type=int, default=2000)
     a = ap.parse_args(argv)
 
-    c = make_contracts(a.rows)
-    n = c["F"].size
-    small = {k: v[:1000] for k, v in c.items()}
-    ours_iv(small), ours_price(small)                       # JIT warm-up
-    tol = tolerance(c)
-    idx = np.random.default_rng(5).choice(n, size=min(a.brentq_rows, n), replace=False)
-
-    t_iv = _median_time(lambda: ours_iv(c), a.repeat)
-    t_px = _median_time(lambda: ours_price(c), a.repeat)
-    t_np = _median_time(lambda: numpy_newton(c), max(1, a.repeat // 2))
-    t_bq = _median_time(lambda: scipy_brentq(c, idx), 1)
-
-    acc_iv = _accuracy(ours_iv(c), c, tol)
-    acc_np = _accuracy(numpy_newton(c), c, tol)
-    acc_bq = _accuracy(scipy_brentq(c, idx), c, tol, idx)
-    acc_iv_sub = _accuracy(ours_iv(c)[idx], c, tol, idx)
-
     import numba
-    rate = lambda t, m: m / t  # noqa: E731
-    r_iv = rate(t_iv, n)
-    rows = [
-        ("volsweep black76_iv", r_iv, acc_iv, n),
-        ("volsweep black76_price", rate(t_px, n), None, n),
-        ("numpy Newton x8 (B-S start)", rate(t_np, n), acc_np, n),
-        ("scipy brentq per contract", rate(t_bq, idx.size), acc_bq, idx.size),
-    ]
-    print(f"{n} contracts, numba threads = {numba.get_num_threads()}, "
-          f"median of {a.repeat} runs (numpy {max(1, a.repeat // 2)}, brentq 1)")
+    rows = []
+    print(f"{a.rows} contracts drawn, numba threads = {numba.get_num_threads()}, median of "
+          f"{a.repeat} runs (numpy {max(1, a.repeat // 2)}, brentq 1); err/tol in units of "
+          "Black-76's tolerance on the forward")
     print(f"{'implementation':32s} {'rows':>9s} {'contracts/s':>12s} {'iv/this':>8s} "
           f"{'max rel err':>11s} {'max err/tol':>11s} {'within tol':>10s}")
-    for name, r, acc, m in rows:
-        extra = ("" if acc is None else f" {acc[0]:11.3g} {acc[1]:11.3g} {acc[2]:10.2%}")
-        print(f"{name:32s} {m:9d} {r:12.4g} {r_iv / r:8.3g}{extra}")
-    print(f"iv throughput / price throughput = {r_iv / rows[1][1]:.3f} (target >= 1/3); "
-          f"ours on the brentq rows: max err/tol {acc_iv_sub[1]:.3g}")
+    for model in registry.MODEL_NAMES:
+        c = make_contracts(a.rows, model=model)
+        n = c["F"].size
+        small = {k: v[:1000] for k, v in c.items()}
+        ours_iv(small, model=model), ours_price(small, model=model)   # JIT warm-up
+        tol = tolerance(c)
+        t_iv = _median_time(lambda: ours_iv(c, model=model), a.repeat)
+        t_px = _median_time(lambda: ours_price(c, model=model), a.repeat)
+        r_iv = n / t_iv
+        found = [(f"volsweep {model} implied_vol", r_iv, _accuracy(ours_iv(c, model=model),
+                                                                   c, tol), n),
+                 (f"volsweep {model} price", n / t_px, None, n)]
+        if model in REFERENCE_MODELS:
+            idx = np.random.default_rng(5).choice(n, size=min(a.brentq_rows, n),
+                                                  replace=False)
+            t_np = _median_time(lambda: numpy_newton(c), max(1, a.repeat // 2))
+            t_bq = _median_time(lambda: scipy_brentq(c, idx), 1)
+            found += [("numpy Newton x8 (B-S start)", n / t_np,
+                       _accuracy(numpy_newton(c), c, tol), n),
+                      ("scipy brentq per contract", idx.size / t_bq,
+                       _accuracy(scipy_brentq(c, idx), c, tol, idx), idx.size)]
+        for name, r, acc, m in found:
+            extra = ("" if acc is None else f" {acc[0]:11.3g} {acc[1]:11.3g} {acc[2]:10.2%}")
+            print(f"{name:32s} {m:9d} {r:12.4g} {r_iv / r:8.3g}{extra}")
+        print(f"{model}: iv throughput / price throughput = {r_iv / found[1][1]:.3f} "
+              "(target >= 1/3)" + ("" if model in REFERENCE_MODELS else
+                                   "; no reference implementations for this model: skipped"))
+        rows += found
     return rows
 
 
@@ -187,21 +207,24 @@ def main(argv=None):
 _BENCH_ROWS = 200_000
 
 
-def _bench_data():
-    if not hasattr(_bench_data, "c"):
-        _bench_data.c = make_contracts(_BENCH_ROWS)
-        ours_iv(_bench_data.c), ours_price(_bench_data.c)
-    return _bench_data.c
+def _bench_data(model=REFERENCE_MODELS[0]):
+    cache = _bench_data.__dict__.setdefault("cache", {})
+    if model not in cache:
+        cache[model] = make_contracts(_BENCH_ROWS, model=model)
+        ours_iv(cache[model], model=model), ours_price(cache[model], model=model)
+    return cache[model]
 
 
-def test_bench_iv(benchmark):
-    c = _bench_data()
+@pytest.mark.parametrize("model", registry.MODEL_NAMES)
+def test_bench_iv(benchmark, model):
+    c = _bench_data(model)
     out = np.empty_like(c["F"])
-    benchmark(ours_iv, c, out)
+    benchmark(ours_iv, c, out, model)
 
 
-def test_bench_price(benchmark):
-    benchmark(ours_price, _bench_data())
+@pytest.mark.parametrize("model", registry.MODEL_NAMES)
+def test_bench_price(benchmark, model):
+    benchmark(ours_price, _bench_data(model), model)
 
 
 def test_bench_numpy_newton(benchmark):

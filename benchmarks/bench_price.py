@@ -3,59 +3,30 @@
     .venv/bin/python -m pytest benchmarks/bench_price.py --benchmark-only   # pytest-benchmark
     .venv/bin/python -m benchmarks.bench_price [--rows N] [--repeats R]    # ratios at 2M rows
 
-Implementations, all on the same arrays:
+Implementations, all on the same arrays, for every model of the registry
+(``volsweep.kernel.registry.MODELS``; its inputs in the registry's order):
 
-* ``ours``   -- volsweep.kernel.black.black76_price / bsm_price (parallel loop)
-* ``numpy``  -- the straightforward whole-array formula with scipy.special.ndtr
+* ``ours``   -- the model's price kernel (``model.kernels["price"]``, parallel loop)
+* ``numpy``  -- the straightforward whole-array formula with scipy.special.ndtr (per model,
+  in ``NUMPY_PRICE``; a model without one is skipped)
 * ``floor``  -- a parallel loop that reads the same input columns and writes one float64
-  column: what memory bandwidth alone allows.
+  column: what memory bandwidth alone allows (by number of input columns, ``FLOORS``).
 
 Speed is reported as ratios measured in one run (the machines are shared and noisy).
 """
 
 import argparse
-import functools
 
 import numba
 import numpy as np
 import pytest
-from numba import prange
 from scipy.special import ndtr
 
+from benchmarks._cases import FLOORS, make_data, model_inputs
 from benchmarks._timing import median_times
-from volsweep.kernel import black
-from volsweep.kernel._jit import loop
+from volsweep.kernel import registry
 
 SIZES = (1_000, 100_000, 2_000_000)
-
-
-@functools.lru_cache(maxsize=4)
-def make_data(n, seed=7):
-    """A listed-options-like batch: strikes around the forward, 1 day to 5 years."""
-    rng = np.random.default_rng(seed)
-    T = np.exp(rng.uniform(np.log(1 / 365), np.log(5.0), n))
-    vol = rng.uniform(0.05, 0.8, n)
-    spot = np.exp(rng.uniform(np.log(5.0), np.log(500.0), n))
-    q = rng.uniform(0.0, 0.04, n)
-    D = np.exp(-rng.uniform(0.0, 0.06, n) * T)
-    F = spot * np.exp(-q * T) / D
-    K = F * np.exp(rng.normal(0.0, 1.0, n) * vol * np.sqrt(T))
-    cp = np.where(rng.random(n) < 0.5, 1, -1).astype(np.int8)
-    return {"F": F, "spot": spot, "K": K, "T": T, "D": D, "q": q, "vol": vol, "cp": cp}
-
-
-# ---------------------------------------------------------------- implementations
-
-@loop
-def floor_black76(F, K, T, D, vol, cp, out):
-    for i in prange(F.shape[0]):
-        out[i] = F[i] + K[i] + T[i] + D[i] + vol[i] + cp[i]
-
-
-@loop
-def floor_bsm(spot, K, T, D, q, vol, cp, out):
-    for i in prange(spot.shape[0]):
-        out[i] = spot[i] + K[i] + T[i] + D[i] + q[i] + vol[i] + cp[i]
 
 
 def numpy_black76(F, K, T, D, vol, cp):
@@ -70,23 +41,27 @@ def numpy_bsm(spot, K, T, D, q, vol, cp):
     return numpy_black76(spot * np.exp(-q * T) / D, K, T, D, vol, cp)
 
 
+# the numpy references, per model name, in the kernels' calling convention (*inputs, vol, cp)
+NUMPY_PRICE = {"black76": numpy_black76, "bsm": numpy_bsm}
+
+
 def _runner(model, impl, d):
-    """A no-argument callable doing one pass of ``impl`` over the batch ``d``."""
+    """A no-argument callable doing one pass of ``impl`` over the batch ``d`` with the
+    registry model named ``model``; None when the model has no such implementation."""
+    m = registry.model(model)
     n = d["K"].shape[0]
-    cols = (("F", "K", "T", "D", "vol", "cp") if model == "black76"
-            else ("spot", "K", "T", "D", "q", "vol", "cp"))
-    args = tuple(d[c] for c in cols)
+    inputs = model_inputs(m, d)
+    args = inputs + (d["vol"], d["cp"])
     price = np.empty(n)
     status = np.empty(n, dtype=np.int8)
     if impl == "ours":
-        if model == "black76":                    # shift 0: plain Black-76
-            shift = np.zeros(n)
-            return lambda: black.black76_price(*args[:4], shift, *args[4:], price, status)
-        return lambda: black.bsm_price(*args, price, status)
+        fn = m.kernels["price"]
+        return lambda: fn(*args, price, status)
+    fn = (FLOORS.get(len(inputs)) if impl == "floor" else NUMPY_PRICE.get(model))
+    if fn is None:
+        return None
     if impl == "floor":
-        fn = floor_black76 if model == "black76" else floor_bsm
         return lambda: fn(*args, price)
-    fn = numpy_black76 if model == "black76" else numpy_bsm
     return lambda: fn(*args)
 
 
@@ -94,11 +69,13 @@ def _runner(model, impl, d):
 
 @pytest.mark.parametrize("n", SIZES)
 @pytest.mark.parametrize("impl", ["ours", "ours_1thread", "numpy", "floor"])
-@pytest.mark.parametrize("model", ["black76", "bsm"])
+@pytest.mark.parametrize("model", registry.MODEL_NAMES)
 def test_price(benchmark, model, impl, n):
     benchmark.group = f"{model} n={n}"
     threads = 1 if impl == "ours_1thread" else numba.config.NUMBA_NUM_THREADS
     run = _runner(model, "ours" if impl == "ours_1thread" else impl, make_data(n))
+    if run is None:
+        pytest.skip(f"no {impl} implementation for model {model}")
     before = numba.get_num_threads()
     numba.set_num_threads(threads)
     try:
@@ -126,21 +103,25 @@ def main(argv=None):
     print(f"{'model':8} {'impl':6} {'threads':>7} {'median s':>10} {'M contracts/s':>14}")
     summary = []
     try:
-        for model in ("black76", "bsm"):
+        for model in registry.MODEL_NAMES:
             numpy_run = _runner(model, "numpy", d)
-            numpy_run()
-            t_np = median_times({"numpy": numpy_run}, args.repeats)["numpy"]
-            print(f"{model:8} {'numpy':6} {1:>7} {t_np:>10.4f} {n / t_np / 1e6:>14.1f}")
+            t_np = float("nan")
+            if numpy_run is None:
+                print(f"{model:8} {'numpy':6} (no numpy reference for this model: skipped)")
+            else:
+                numpy_run()
+                t_np = median_times({"numpy": numpy_run}, args.repeats)["numpy"]
+                print(f"{model:8} {'numpy':6} {1:>7} {t_np:>10.4f} {n / t_np / 1e6:>14.1f}")
             for th in thread_counts:
                 numba.set_num_threads(th)
                 runs = {impl: _runner(model, impl, d) for impl in ("ours", "floor")}
-                for fn in runs.values():
-                    fn()  # JIT warm-up
-                t = median_times(runs, args.repeats)
-                for impl in ("ours", "floor"):
+                runs = {k: v for k, v in runs.items() if v is not None}
+                t = median_times(runs, args.repeats, warmup=True)
+                for impl in runs:
                     print(f"{model:8} {impl:6} {th:>7} {t[impl]:>10.4f} "
                           f"{n / t[impl] / 1e6:>14.1f}")
-                summary.append((model, th, t["floor"] / t["ours"], t_np / t["ours"]))
+                summary.append((model, th, t.get("floor", float("nan")) / t["ours"],
+                                t_np / t["ours"]))
     finally:
         numba.set_num_threads(before)
     print(f"threading layer: {numba.threading_layer()}")

@@ -1,17 +1,28 @@
 """The benchmark report behind `volsweep bench` / `make bench`: every ratio, one run.
 
     .venv/bin/python -m benchmarks.report [--rows N] [--repeats R] [--asm] [--cold]
+        [--before CHECKOUT]
 
 At N rows (2M by default), with every implementation taking turns round by round (so the
 drift of a shared machine hits all of them alike) and the median of R rounds:
 
-* kernel throughput, 1 and 2 threads, both models: a memory floor (read the same input
-  columns, write one), price, implied vol, all Greeks, the fused sweep (iv + all Greeks),
-  and the ratios price/floor, iv/price, greeks/price, sweep/price, 2 threads / 1 thread;
+* kernel throughput, 1 and 2 threads, every model of the registry
+  (``volsweep.kernel.registry.MODELS``, its kernels and inputs: adding a model adds it
+  here): a memory floor (read the same input columns, write one), price, implied vol, all
+  Greeks, the fused sweep (iv + all Greeks), and the ratios price/floor, iv/price,
+  greeks/price, sweep/price, 2 threads / 1 thread; bid/ask quotes in one pass (the
+  ``bid_ask`` kernel) against three implied-vol passes and a vega pass;
+* every model's price and implied vol taking turns in the same rounds (price against the
+  other models' prices, iv against the model's own price);
 * against the straightforward alternatives: whole-array numpy/scipy prices and Greeks,
   a vectorised numpy Newton for implied vol, scipy's brentq per contract (subsample);
+  these references exist per model (``bench_price.NUMPY_PRICE``,
+  ``bench_greeks.NUMPY_GREEKS``, ``bench_implied.REFERENCE_MODELS``): a model without one
+  is listed as skipped;
 * table-level calls (Arrow in, Arrow out) against the kernel calls on the same columns,
-  at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call);
+  at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call; with
+  ``--before CHECKOUT``, the previous code version and this one taking turns in two child
+  processes, ``benchmarks.compare``);
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -35,9 +46,9 @@ import time
 import numba
 import numpy as np
 
-from benchmarks import bench_greeks, bench_implied, bench_price
+from benchmarks import _cases, bench_greeks, bench_implied, bench_price, compare
 from benchmarks._timing import median_times
-from volsweep.kernel import black, greeks, implied, registry, sweep
+from volsweep.kernel import registry
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -46,70 +57,64 @@ def _rounds(runs: dict, repeats: int) -> dict:
     return median_times(runs, repeats, warmup=True)
 
 
-def _kernel_runs(model: str, d: dict) -> dict:
-    n = d["K"].shape[0]
-    m = greeks.greek_mask(None, model)   # all the model has (Black-76: no div_rho)
-    U = d["F"] if model == "black76" else d["spot"]
-    cols = (U, d["K"], d["T"], d["D"]) + ((np.zeros(n),) if model == "black76" else (d["q"],))
-    p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
-    out = np.empty((bin(m).count("1"), n))
-    fp, fi, fg, fs = ((black.black76_price, implied.black76_iv, greeks.black76_greeks,
-                       sweep.black76_sweep) if model == "black76" else
-                      (black.bsm_price, implied.bsm_iv, greeks.bsm_greeks, sweep.bsm_sweep))
-    fp(*cols, d["vol"], d["cp"], p, st)
-    prem = p.copy()
-    floor = bench_price.floor_bsm        # one extra input each (Black-76: the shift)
-    fl_out = np.empty(n)
-    return {
-        "floor": lambda: floor(*cols, d["vol"], d["cp"], fl_out),
-        "price": lambda: fp(*cols, d["vol"], d["cp"], p, st),
-        "iv": lambda: fi(prem, *cols, d["cp"], iv, st),
-        "greeks": lambda: fg(*cols, d["vol"], d["cp"], m, out, st),
-        "sweep": lambda: fs(prem, *cols, d["cp"], m, iv, out, st),
-    }
+KERNEL_CASES = ("floor", "price", "iv", "greeks", "sweep", "bid/ask 3+1", "bid/ask")
 
 
 def kernel_section(n: int, repeats: int) -> dict:
-    d = bench_price.make_data(n)
+    d = _cases.make_data(n)
+    models = _cases.models()
     before = numba.get_num_threads()
     res = {}
     try:
-        for model in ("black76", "bsm"):
+        for name, spec in models.items():
             for th in sorted({1, min(2, numba.config.NUMBA_NUM_THREADS)}):
                 numba.set_num_threads(th)
-                t = _rounds(_kernel_runs(model, d), repeats)
-                res[(model, th)] = {k: n / v for k, v in t.items()}
+                t = _rounds(_cases.kernel_runs(spec, d), repeats)
+                res[(name, th)] = {k: n / v for k, v in t.items()}
     finally:
         numba.set_num_threads(before)
-    print(f"\n1. Kernels, {n:,} rows (M contracts/s; ratios within each row)")
+    print(f"\n1. Kernels, {n:,} rows, every model of the registry (M contracts/s; ratios "
+          "within each row)")
     print(f"{'model':8} {'thr':>3} {'floor':>7} {'price':>7} {'iv':>7} {'greeks':>7} "
           f"{'sweep':>7} | {'px/floor':>8} {'iv/px':>6} {'grk/px':>6} {'swp/px':>6}")
+    nan = float("nan")
     for (model, th), r in res.items():
-        print(f"{model:8} {th:>3} " + " ".join(f"{r[k] / 1e6:7.1f}" for k in
+        print(f"{model:8} {th:>3} " + " ".join(f"{r.get(k, nan) / 1e6:7.1f}" for k in
                                                ("floor", "price", "iv", "greeks", "sweep"))
-              + f" | {r['price'] / r['floor']:8.3f} {r['iv'] / r['price']:6.3f} "
-              f"{r['greeks'] / r['price']:6.3f} {r['sweep'] / r['price']:6.3f}")
+              + f" | {r['price'] / r.get('floor', nan):8.3f} "
+              f"{r['iv'] / r['price']:6.3f} {r['greeks'] / r['price']:6.3f} "
+              f"{r['sweep'] / r['price']:6.3f}")
+    for name, spec in models.items():
+        notes = []
+        if "floor" not in res[(name, 1)]:
+            notes.append("no memory floor for its number of inputs (bench_price.FLOORS)")
+        if _cases.defaulted(spec, d):
+            notes.append(f"extra inputs at their defaults: {', '.join(_cases.defaulted(spec, d))}")
+        if notes:
+            print(f"  {name}: " + "; ".join(notes))
     if any(th == 2 for _, th in res):
         print("2 threads / 1 thread: " + "; ".join(
             f"{model} " + " ".join(f"{k} {res[(model, 2)][k] / res[(model, 1)][k]:.2f}"
                                    for k in ("price", "iv", "greeks", "sweep"))
-            for model in ("black76", "bsm")))
+            for model in models))
+    print("bid/ask quotes (iv of bid, ask and mid + vega at the mid): one pass (bid_ask "
+          "kernel) against 3 implied-vol passes + a vega pass, M/s and ratio: " + "; ".join(
+              f"{model} {th} thr {r['bid/ask'] / 1e6:.1f} vs {r['bid/ask 3+1'] / 1e6:.1f} "
+              f"x{r['bid/ask'] / r['bid/ask 3+1']:.2f}" for (model, th), r in res.items()
+              if "bid/ask" in r))
     return res
 
 
 def models_section(n: int, repeats: int) -> dict:
     """Price and implied vol of every model of the registry, all taking turns in the same
-    rounds (2 threads): the cross-model ratios.  Same batch for every model (its extra
-    inputs at their registry defaults; a normal model's vols are the batch's lognormal
-    vols times the forward, so its rows sit as far from the money in standard
+    rounds: the cross-model ratios.  Same batch for every model (its extra inputs at their
+    registry defaults; a normal model's vols, registry ``Model.vol``, are the batch's
+    lognormal vols times the forward, so its rows sit as far from the money in standard
     deviations)."""
-    d = bench_price.make_data(n)
-    d = dict(d, forward=d["F"], div_yield=d["q"])
+    d = _cases.make_data(n)
     runs = {}
     for name, m in registry.MODELS.items():
-        cols = (d[m.underlying], d["K"], d["T"], d["D"]) + tuple(
-            d[x.name] if x.name in d else np.full(n, x.default) for x in m.extras)
-        # a normal vol of the same size in standard deviations (registry Model.vol)
+        cols = _cases.model_inputs(m, d)
         vol = d["vol"] * d["F"] if m.vol == "normal" else d["vol"]
         p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
         m.kernels["price"](*cols, vol, d["cp"], p, st)
@@ -133,134 +138,113 @@ def models_section(n: int, repeats: int) -> dict:
 
 
 def alternatives_section(n: int, repeats: int, brentq_rows: int = 2000) -> None:
-    d = bench_price.make_data(n)
-    runs = {}
-    for model in ("black76", "bsm"):
-        runs[f"{model} price"] = bench_price._runner(model, "ours", d)
-        runs[f"{model} price numpy"] = bench_price._runner(model, "numpy", d)
-        runs[f"{model} greeks"] = bench_greeks._runner(model, "all", d)
-        runs[f"{model} greeks numpy"] = bench_greeks._runner(model, "numpy", d)
-    c = bench_implied.make_contracts(n)
-    nc = c["F"].shape[0]
-    ivo = np.empty(nc)
-    runs["iv"] = lambda: bench_implied.ours_iv(c, ivo)
-    runs["iv numpy"] = lambda: bench_implied.numpy_newton(c)
+    d = _cases.make_data(n)
+    runs, skipped = {}, []
+    for model in registry.MODEL_NAMES:
+        for label, runner, impl in (("price", bench_price._runner, "ours"),
+                                    ("price numpy", bench_price._runner, "numpy"),
+                                    ("greeks", bench_greeks._runner, "all"),
+                                    ("greeks numpy", bench_greeks._runner, "numpy")):
+            fn = runner(model, impl, d)
+            if fn is None:
+                skipped.append(f"{model} {label}")
+            else:
+                runs[f"{model} {label}"] = fn
+    iv_models = [m for m in registry.MODEL_NAMES if m in bench_implied.REFERENCE_MODELS]
+    contracts = {m: bench_implied.make_contracts(n, model=m) for m in iv_models}
+    ivo = {m: np.empty(c["F"].shape[0]) for m, c in contracts.items()}
+    for m, c in contracts.items():
+        runs[f"{m} iv"] = lambda m=m, c=c: bench_implied.ours_iv(c, ivo[m], m)
+        runs[f"{m} iv numpy"] = lambda c=c: bench_implied.numpy_newton(c)
     t = _rounds(runs, max(3, repeats // 2))
-    idx = np.random.default_rng(3).choice(nc, size=min(brentq_rows, nc), replace=False)
-    t0 = time.perf_counter()
-    got = bench_implied.scipy_brentq(c, idx)
-    t_brentq = (time.perf_counter() - t0) / idx.size
-    tol = bench_implied.tolerance(c)
-    acc_ours = bench_implied._accuracy(ivo, c, tol)
-    acc_np = bench_implied._accuracy(bench_implied.numpy_newton(c), c, tol)
-    acc_bq = bench_implied._accuracy(got, c, tol, idx)
-    print(f"\n2. Against the straightforward versions (2 threads for ours; numpy is "
-          f"single-threaded)")
-    for model in ("black76", "bsm"):
-        print(f"  {model:8} price  {t[f'{model} price numpy'] / t[f'{model} price']:6.1f}x "
-              f"numpy+ndtr   greeks {t[f'{model} greeks numpy'] / t[f'{model} greeks']:6.1f}x "
-              "numpy+ndtr")
-    print(f"  black76  iv     {t['iv numpy'] / t['iv']:6.1f}x numpy Newton (8 steps; "
-          f"{100 * acc_np[2]:.1f}% of rows within tolerance vs ours {100 * acc_ours[2]:.1f}%)")
-    print(f"  black76  iv     {t_brentq / (t['iv'] / nc):6.0f}x scipy brentq per contract "
-          f"({idx.size} rows; brentq worst {acc_bq[1]:.2f} of tolerance, ours "
-          f"{acc_ours[1]:.2f})")
-
-
-def _bsm_snapshot(n: int):
-    """A one-chunk synthetic BSM snapshot of n rows (no bad rows, premium quotes), and the
-    kernel inputs the table-level calls derive from it: float columns and call/put codes."""
-    import pyarrow as pa
-
-    from volsweep.data_gen import make_snapshot
-
-    snap = make_snapshot(n_rows=n, seed=5, bad_fraction=0.0).drop_columns(["bid", "ask"])
-    snap = pa.Table.from_batches(snap.combine_chunks().to_batches())
-    col = {k: snap.column(k).to_numpy() for k in
-           ("spot", "strike", "expiry_years", "rate", "div_yield", "true_vol", "premium")}
-    cp = np.where(snap.column("is_call").to_numpy(zero_copy_only=False), 1, -1).astype(np.int8)
-    return snap, col, cp
+    print("\n2. Against the straightforward versions (2 threads for ours; numpy is "
+          "single-threaded)")
+    for model in registry.MODEL_NAMES:
+        cells = [f"{what:6s} {t[f'{model} {what} numpy'] / t[f'{model} {what}']:6.1f}x "
+                 "numpy+ndtr" for what in ("price", "greeks") if f"{model} {what} numpy" in t]
+        if cells:
+            print(f"  {model:8} " + "   ".join(cells))
+    for m, c in contracts.items():
+        nc = c["F"].shape[0]
+        idx = np.random.default_rng(3).choice(nc, size=min(brentq_rows, nc), replace=False)
+        t0 = time.perf_counter()
+        got = bench_implied.scipy_brentq(c, idx)
+        t_brentq = (time.perf_counter() - t0) / idx.size
+        tol = bench_implied.tolerance(c)
+        acc_ours = bench_implied._accuracy(ivo[m], c, tol)
+        acc_np = bench_implied._accuracy(bench_implied.numpy_newton(c), c, tol)
+        acc_bq = bench_implied._accuracy(got, c, tol, idx)
+        print(f"  {m:8} iv     {t[f'{m} iv numpy'] / t[f'{m} iv']:6.1f}x numpy Newton (8 "
+              f"steps; {100 * acc_np[2]:.1f}% of rows within tolerance vs ours "
+              f"{100 * acc_ours[2]:.1f}%)")
+        print(f"  {m:8} iv     {t_brentq / (t[f'{m} iv'] / nc):6.0f}x scipy brentq per "
+              f"contract ({idx.size} rows; brentq worst {acc_bq[1]:.2f} of tolerance, ours "
+              f"{acc_ours[1]:.2f})")
+    skipped += [f"{m} iv" for m in registry.MODEL_NAMES if m not in iv_models]
+    if skipped:
+        print(f"  no reference implementation, skipped: {', '.join(skipped)}")
 
 
 def table_section(n: int, repeats: int) -> None:
-    import volsweep
-
-    snap, col, cp = _bsm_snapshot(n)
-    T = col["expiry_years"]
-    D = black.discount_factors(col["rate"], T, np.empty(n))   # as the bindings derive it
-    args = (col["spot"], col["strike"], T, D, col["div_yield"])
-    p, st, iv = np.empty(n), np.empty(n, np.int8), np.empty(n)
-    out = np.empty((greeks.N_GREEKS, n))
-    m = greeks.ALL_GREEKS
-    runs = {
-        "price": lambda: volsweep.price(snap, columns={"vol": "true_vol"}),
-        "price kernel": lambda: black.bsm_price(*args, col["true_vol"], cp, p, st),
-        "implied_vol": lambda: volsweep.implied_vol(snap),
-        "implied_vol kernel": lambda: implied.bsm_iv(col["premium"], *args, cp, iv, st),
-        "greeks": lambda: volsweep.greeks(snap, columns={"vol": "true_vol"}),
-        "greeks kernel": lambda: greeks.bsm_greeks(*args, col["true_vol"], cp, m, out, st),
-        "sweep": lambda: volsweep.sweep(snap),
-        "sweep kernel": lambda: sweep.bsm_sweep(col["premium"], *args, cp, m, iv, out, st),
-        # the same kernels writing into fresh outputs, as a table-level call must (the
-        # first touch of new memory is part of the cost: 256 MB for 16 Greeks at 2M rows)
-        "price fresh": lambda: black.bsm_price(*args, col["true_vol"], cp, np.empty(n),
-                                               np.empty(n, np.int8)),
-        "implied_vol fresh": lambda: implied.bsm_iv(col["premium"], *args, cp, np.empty(n),
-                                                    np.empty(n, np.int8)),
-        "greeks fresh": lambda: greeks.bsm_greeks(*args, col["true_vol"], cp, m,
-                                                  np.empty_like(out), np.empty(n, np.int8)),
-        "sweep fresh": lambda: sweep.bsm_sweep(col["premium"], *args, cp, m, np.empty(n),
-                                               np.empty_like(out), np.empty(n, np.int8)),
-        # what a kernel-level caller holding rates (as the table does) must also compute
-        "discount": lambda: black.discount_factors(col["rate"], T, np.empty(n)),
-    }
-    t = _rounds(runs, repeats)
-    print(f"\n3. Table-level calls (BSM, synthetic snapshot, {n:,} rows, one chunk) against "
-          "the kernel on the same columns, into reused and into fresh output arrays")
-    print("  (fresh+D: into fresh outputs, plus the discount factors from the rates)")
-    print(f"  {'':12s} {'table':>7s} {'kernel':>7s} {'fresh':>7s} {'fresh+D':>7s}  (M/s)   "
-          "table/kernel  table/fresh  table/fresh+D")
-    for name in ("price", "implied_vol", "greeks", "sweep"):
-        r = {k: n / t[name + k] / 1e6 for k in ("", " kernel", " fresh")}
-        r["+D"] = n / (t[name + " fresh"] + t["discount"]) / 1e6
-        print(f"  {name:12s} {r['']:7.1f} {r[' kernel']:7.1f} {r[' fresh']:7.1f} "
-              f"{r['+D']:7.1f}          {r[''] / r[' kernel']:6.3f}       "
-              f"{r[''] / r[' fresh']:6.3f}        {r[''] / r['+D']:6.3f}")
+    snap, col = _cases.snapshot(n)
+    ops = ("price", "implied_vol", "greeks", "sweep")
+    print(f"\n3. Table-level calls (synthetic snapshot, {n:,} rows, one chunk) against "
+          "the kernel on the same columns (discount factors from the rates included)")
+    print("  (fresh: the kernel into fresh outputs, as a table-level call must; reused: into "
+          "outputs reused from call to call)")
+    print(f"  {'model':8s} {'':12s} {'table':>7s} {'fresh':>7s} {'reused':>7s}  (M/s)   "
+          "table/fresh  table/reused")
+    for name, spec in _cases.models().items():
+        runs = _cases.table_runs(spec, snap, col, ops)
+        runs.update({k + " reused": v for k, v in
+                     _cases.table_runs(spec, snap, col, ops, fresh=False).items()
+                     if k.endswith(" kernel")})
+        t = _rounds(runs, repeats)
+        for op in ops:
+            r = {k: n / t[op + k] / 1e6 for k in ("", " kernel", " kernel reused")}
+            print(f"  {name:8s} {op:12s} {r['']:7.1f} {r[' kernel']:7.1f} "
+                  f"{r[' kernel reused']:7.1f}          {r[''] / r[' kernel']:6.3f}       "
+                  f"{r[''] / r[' kernel reused']:6.3f}")
 
 
+TARGET_US = 40      # issue 13: a 100-row table-level call at most 40 us above its kernel
 
-def small_batch_section(repeats: int, sizes=(100, 10_000)) -> None:
+
+def small_batch_section(repeats: int, sizes=(100, 10_000), before: str | None = None) -> None:
     """Table-level calls on small batches (the embedded case: a risk engine calling per
-    book or per underlying): the fixed cost of a call beside the kernels it runs."""
-    import volsweep
-
-    print("\n3b. Small batches (BSM): table-level call against discount factors + kernel "
-          "(microseconds per call, median)")
-    for n in sizes:
-        snap, col, cp = _bsm_snapshot(n)
-        T = col["expiry_years"]
-        S, K, q = col["spot"], col["strike"], col["div_yield"]
-
-        def price_k():
-            D = black.discount_factors(col["rate"], T, np.empty(n))
-            black.bsm_price(S, K, T, D, q, col["true_vol"], cp, np.empty(n),
-                            np.empty(n, np.int8))
-
-        def iv_k():
-            D = black.discount_factors(col["rate"], T, np.empty(n))
-            implied.bsm_iv(col["premium"], S, K, T, D, q, cp, np.empty(n),
-                           np.empty(n, np.int8))
-
-        calls = 20   # per timing: one 100-row call is ~0.1 ms, too short to time alone
-        runs = {name: (lambda f=f: [f() for _ in range(calls)]) for name, f in {
-            "price": lambda: volsweep.price(snap, columns={"vol": "true_vol"}),
-            "price kernel": price_k,
-            "implied_vol": lambda: volsweep.implied_vol(snap),
-            "implied_vol kernel": iv_k}.items()}
-        t = _rounds(runs, max(repeats, 60))
-        us = {k: v / calls * 1e6 for k, v in t.items()}
-        print(f"  {n:>7,d} rows: price {us['price']:7.1f} vs {us['price kernel']:6.1f}   "
-              f"implied_vol {us['implied_vol']:7.1f} vs {us['implied_vol kernel']:6.1f}")
+    book or per underlying): the fixed cost of a call above the kernels it runs.  With
+    ``before`` (another checkout with its own .venv), both code versions in two child
+    processes taking turns (``benchmarks.compare``)."""
+    calls = 20   # per timing: one 100-row call is ~0.1 ms, too short to time alone
+    rounds = max(repeats, 60)  # fewer rounds read 1.5-2x high while the CPU settles
+    if before is not None:
+        print("\n3b. Small batches: table-level call against discount factors + kernel, "
+              "before and after")
+        sides = [compare.Checkout("before", before), compare.Checkout("after", ROOT)]
+        try:
+            found = compare.small_section(sides, rounds, calls, sizes)
+        finally:
+            for side in sides:
+                side.close()
+        over = {k[:3]: v[-1][0] - v[-1][1] for k, v in found.items()
+                if v[-1] is not None and k[3] == 1}
+    else:
+        print("\n3b. Small batches: table-level call against discount factors + kernel into "
+              f"fresh outputs (microseconds per call, median of {rounds} rounds of {calls})")
+        over = {}
+        for n in sizes:
+            snap, col = _cases.snapshot(n)
+            for name, spec in _cases.models().items():
+                t = _rounds(_cases.repeated(_cases.table_runs(spec, snap, col), calls), rounds)
+                us = {k: v / calls * 1e6 for k, v in t.items()}
+                print(f"  {name:8s} {n:>7,d} rows: " + "   ".join(
+                    f"{op} {us[op]:7.1f} vs {us[op + ' kernel']:6.1f}" for op in
+                    _cases.TABLE_OPS))
+                over.update({(name, n, op): us[op] - us[op + " kernel"]
+                             for op in _cases.TABLE_OPS})
+    worst = max(v for (_, n, _), v in over.items() if n == min(sizes))
+    print(f"  {min(sizes)}-row calls: at most {worst:.1f} us above the kernel (target "
+          f"{TARGET_US} us: {'met' if worst <= TARGET_US else 'NOT met'})")
 
 
 _FIRST_CALL = """
@@ -292,17 +276,22 @@ def latency_section() -> None:
 
 
 _ASM = """
-import json, re, numpy as np
+import json, re, sys, numpy as np
 import volsweep
-from volsweep.kernel import bachelier, black, implied, greeks
+from volsweep.kernel import black, implied, greeks, registry
 volsweep.warmup(which=None, sweep=False)
 found = {}
-loops = {"black76 price": black._black76_price_rows, "bsm price": black._bsm_price_rows,
-         "black76 iv": implied._black76_iv_rows, "bsm iv": implied._bsm_iv_rows,
-         "black76 greeks": greeks._kernel("black76", greeks.greek_mask(None, "black76"))[0],
-         "bsm greeks": greeks._kernel("bsm", greeks.greek_mask(None, "bsm"))[0],
-         "bachelier price": bachelier._price_rows, "bachelier iv": bachelier._iv_rows}
+loops = {}
+for m in registry.MODEL_NAMES:   # the row loops behind each model's entry points
+    for op, mod, key in (("price", black, "price"), ("iv", implied, "implied_vol")):
+        own = sys.modules[registry.MODELS[m].kernels[key].__module__]   # a model's module
+        loops[f"{m} {op}"] = (getattr(mod, f"_{m}_{op}_rows", None)
+                              or getattr(own, f"_{op}_rows", None))
+    loops[f"{m} greeks"] = greeks._kernel(m, greeks.greek_mask(None, m))[0]
 for name, fn in loops.items():
+    if fn is None:
+        found[name] = None
+        continue
     asm = "\\n".join(fn.inspect_asm().values())
     packed = len(re.findall(r"\\bv(?:fmadd|fmsub|fnmadd|mul|add|sub|div)\\w*pd\\s+%[yz]mm", asm))
     calls = sorted(set(re.findall(r"call\\w*\\s+([A-Za-z_][\\w@.]*)", asm)))
@@ -320,6 +309,9 @@ def asm_section() -> None:
     found = json.loads(r.stdout.strip().splitlines()[-1])
     print("\n5. Machine code of the hot row loops (fresh compile)")
     for name, f in found.items():
+        if f is None:
+            print(f"  {name:15s} (no row loop of that name: not inspected)")
+            continue
         libm = [c for c in f["named_calls"] if any(s in c for s in ("exp", "log", "erf"))]
         print(f"  {name:15s} packed double ops {f['packed_double_ops']:5d} "
               f"({'zmm' if f['zmm'] else 'ymm'}), libm calls: {libm or 'none'}")
@@ -359,6 +351,8 @@ def main(argv=None, rows: int | None = None) -> int:
     ap.add_argument("--repeats", type=int, default=7)
     ap.add_argument("--asm", action="store_true", help="inspect the hot loops' machine code")
     ap.add_argument("--cold", action="store_true", help="time a cold compile (minutes)")
+    ap.add_argument("--before", metavar="CHECKOUT", help="another checkout with its own "
+                    ".venv: section 3b measures both code versions taking turns")
     args = ap.parse_args(argv)
     import volsweep
 
@@ -369,7 +363,7 @@ def main(argv=None, rows: int | None = None) -> int:
     print(f"   machine: {machine()}")
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
-    small_batch_section(args.repeats)
+    small_batch_section(args.repeats, before=args.before)
     latency_section()
     if args.asm:
         asm_section()

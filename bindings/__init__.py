@@ -16,6 +16,7 @@ _EXPORTS = {
     "prepare": "api", "backfill": "dask_backfill", "warmup": "loader",
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
+    "OptionError": "_columns", "IgnoredInputWarning": "_columns",
 }
 
 __all__ = sorted(_EXPORTS)

@@ -23,6 +23,9 @@ Logical inputs and the default column names (any of them can be remapped with
 from __future__ import annotations
 
 import datetime as _dt
+import re
+import sys
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -41,9 +44,63 @@ KNOWN_NAMES = tuple(dict.fromkeys(
     + ["strike", "expiry_years", "expiry", "as_of", "rate", "discount"]
     + [x.name for m in _registry.MODELS.values() for x in m.extras]
     + ["is_call", "vol", "premium", "bid", "ask"]))
+# the inputs read as numbers (all but the call/put flag and the times)
+NUMERIC_NAMES = tuple(n for n in KNOWN_NAMES if n not in ("is_call", "expiry", "as_of"))
 _NS_PER_YEAR = 365.0 * 86400.0 * 1e9  # ACT/365F
 _CALL_WORDS = ["call", "c"]
 _PUT_WORDS = ["put", "p"]
+
+
+def numeric_columns(columns: dict | None) -> set:
+    """The column names our numeric inputs are read from under ``columns`` (a CSV reader
+    reads them as numbers whatever its first block holds)."""
+    columns = columns or {}
+    return {columns.get(n, n) for n in NUMERIC_NAMES} - {None}
+
+
+# How each surface spells the options an error names: Python's arguments here; the
+# command line passes its own flags to ``Worded.render``.  ``unmap``: how to say "no
+# column for this input".
+PYTHON_WORDS = {"columns": "columns=", "as_of": "as_of=", "quotes": "quotes=",
+                "keep": "keep=", "unmap": "columns={{{name!r}: None}}"}
+
+
+class Worded:
+    """A message about an option, worded for the surface that set it.
+
+    ``template`` names the option as ``{option}`` (and the way to map an input to nothing
+    as ``{unmap}``); ``str()`` speaks Python (``columns=``), ``render(words)`` another
+    surface's spelling (the command line's ``--map``)."""
+
+    def __init__(self, option: str, template: str, **fields):
+        self.option, self.template, self.fields = option, template, fields
+        super().__init__(self.render(PYTHON_WORDS))
+
+    def render(self, words: dict) -> str:
+        unmap = words["unmap"].format(name=self.fields.get("name", ""))
+        return self.template.format(option=words[self.option], unmap=unmap, **self.fields)
+
+    def within(self, where: str):
+        """The same message, said of ``where`` (e.g. a backfill's partition)."""
+        return type(self)(self.option, "{where}: " + self.template, where=where,
+                          **self.fields)
+
+    def __reduce__(self):          # rebuilt from its parts (e.g. back from a Dask worker)
+        return _reworded, (type(self), self.option, self.template, self.fields)
+
+
+def _reworded(cls, option, template, fields):
+    return cls(option, template, **fields)
+
+
+class OptionError(Worded, ValueError):
+    """A schema problem caused by an option (``columns=``, ``as_of=``, ...): a ValueError
+    whose message the command line rewords with its own flags."""
+
+
+class IgnoredInputWarning(Worded, UserWarning):
+    """An input column, by its default name, that the model does not read (a ``div_yield``
+    under Black-76): warned about, not read."""
 
 
 @dataclass
@@ -55,6 +112,7 @@ class ColumnPlan:
     as_of_value: object = None                    # scalar as_of (seconds, ns), if given
     quote: str = "none"                           # "premium", "bid_ask" or "none"
     plain: set = field(default_factory=set)       # logical inputs stored as plain float64
+    index: dict = field(default_factory=dict)     # logical name -> column position
 
     # ------------------------------------------------------------------ building
     @classmethod
@@ -67,22 +125,27 @@ class ColumnPlan:
         columns = dict(columns or {})
         for key, value in columns.items():
             if key not in KNOWN_NAMES:
-                raise ValueError(f"columns= maps unknown input {key!r}; known inputs: "
-                                 f"{', '.join(KNOWN_NAMES)}")
-            if not isinstance(value, str):
-                raise TypeError(f"columns[{key!r}] must be a column name (str), got {value!r}")
+                raise OptionError("columns", "{option} names an unknown input {key!r}; known "
+                                  "inputs: {known}", key=key, known=", ".join(KNOWN_NAMES))
+            if value is not None and not isinstance(value, str):
+                raise TypeError(f"columns[{key!r}] must be a column name (str) or None, got "
+                                f"{value!r}")
         names = schema.names
         dupes = sorted({n for n in names if names.count(n) > 1})
         for key, value in columns.items():
             # a mapping to a column that is not there is a mistake, not a fallback: with
             # {"premium": "mid"} and no "mid", the quote must not silently become bid/ask
-            if value not in names:
-                raise ValueError(f"columns= maps {key!r} to column {value!r}, which the input "
-                                 "does not have")
+            if value is not None and value not in names:
+                raise OptionError("columns", "{option} gives column {value!r} for {key!r}, "
+                                  "but the input has no column {value!r}", key=key,
+                                  value=value)
+        _check_model_inputs(entry, columns, names)
         plan = cls(model)
 
         def present(logical):
             col = columns.get(logical, logical)
+            if col is None:                 # mapped to nothing: no column for this input
+                return None
             if col in dupes:
                 raise ValueError(f"column {col!r} appears more than once in the input")
             return col if col in names else None
@@ -90,10 +153,11 @@ class ColumnPlan:
         def require(logical, why=""):
             col = present(logical)
             if col is None:
-                mapped = columns.get(logical)
-                hint = f" (mapped from {logical!r})" if mapped else ""
-                raise ValueError(f"missing column {columns.get(logical, logical)!r}{hint}: "
-                                 f"required for {why or logical}")
+                if logical in columns:      # mapped to nothing, yet required
+                    raise OptionError("columns", "{option} maps {name!r} to no column, "
+                                      "but it is required for {why}", name=logical,
+                                      why=why or logical)
+                raise ValueError(f"missing column {logical!r}: required for {why or logical}")
             plan.source[logical] = col
             return col
 
@@ -117,8 +181,11 @@ class ColumnPlan:
                 plan.source["as_of"] = as_of
             elif as_of is not None:
                 plan.as_of_value = _scalar_time(as_of)
+            elif present("as_of") is None:
+                raise OptionError("as_of", "missing column 'as_of': required for an 'expiry' "
+                                  "column (give {option} a time or a column name)")
             else:
-                require("as_of", "an 'expiry' column (give as_of= a time or a column)")
+                require("as_of")
         else:
             require("expiry_years", "time to expiry ('expiry_years', or 'expiry' + as_of)")
         exclusive("rate", "discount")
@@ -141,14 +208,15 @@ class ColumnPlan:
                 require("ask", "a bid/ask quote")
                 plan.quote = "bid_ask"
             else:
-                raise ValueError(f"missing column {columns.get('premium', 'premium')!r}: "
-                                 "implied vol needs 'premium' or 'bid' and 'ask'")
+                raise ValueError("missing column 'premium': implied vol needs 'premium' or "
+                                 "'bid' and 'ask'")
         plan._check_types(schema)
         return plan
 
     def _check_types(self, schema: pa.Schema) -> None:
         for logical, col in self.source.items():
             raw = schema.field(col).type
+            self.index[logical] = schema.get_field_index(col)   # unique: dupes refused
             if raw == pa.float64():
                 self.plain.add(logical)     # read without decoding or casting
             t = _value_type(raw)
@@ -170,7 +238,7 @@ class ColumnPlan:
 
     # ---------------------------------------------------------------- extraction
     def floats(self, batch: pa.RecordBatch, logical: str) -> np.ndarray:
-        col = batch.column(self.source[logical])
+        col = batch.column(self.index[logical])
         if logical in self.plain and not col.null_count:
             return col.to_numpy()           # zero-copy view of a plain float64 column
         return _to_float64(col)
@@ -202,6 +270,43 @@ class ColumnPlan:
         return _to_call_put(batch.column(self.source["is_call"]))
 
 
+def _check_model_inputs(entry, columns: dict, names) -> None:
+    """Inputs of other models (their underlyings and extra inputs, from the registry) that
+    this model does not read: mapped explicitly, an error; an extra input present under
+    its default name (a ``div_yield`` column under Black-76), a warning, unless it is
+    mapped to no column.  Another model's underlying present under its default name is
+    neither: chains often carry both a spot and a forward."""
+    reads = {entry.underlying} | {x.name for x in entry.extras}
+    others = {}                                   # input -> a model that reads it
+    for m in _registry.MODELS.values():
+        for name in [m.underlying] + [x.name for x in m.extras]:
+            if name not in reads:
+                others.setdefault(name, m.name)
+    for key, value in columns.items():
+        if key in others and value is not None:
+            raise OptionError("columns", "{option} gives column {value!r} for {key!r}, which "
+                              "model {model!r} does not read (model {other!r} does; "
+                              "{model!r} reads {reads})", key=key, value=value,
+                              model=entry.name, other=others[key],
+                              reads=", ".join(repr(r) for r in sorted(reads)))
+    extras = {x.name for m in _registry.MODELS.values() for x in m.extras}
+    mapped = set(columns.values())
+    for name in sorted(extras & set(others)):
+        if name in names and name not in columns and name not in mapped:
+            warnings.warn(IgnoredInputWarning(
+                "columns", "column {name!r} is not read: model {model!r} has no input "
+                "{name!r} (model {other!r} has); map it to no column to say so ({unmap})",
+                name=name, model=entry.name, other=others[name]), stacklevel=_caller_level())
+
+
+def _caller_level() -> int:
+    """The ``stacklevel`` of the first frame outside volsweep (the caller's own line)."""
+    frame, level = sys._getframe(1), 1
+    while frame is not None and frame.f_globals.get("__name__", "").startswith("volsweep"):
+        frame, level = frame.f_back, level + 1
+    return level
+
+
 _is_string_view = getattr(pa.types, "is_string_view", lambda t: False)  # pyarrow >= 16
 
 
@@ -212,24 +317,43 @@ def _value_type(t: pa.DataType) -> pa.DataType:
     return t
 
 
-def _decoded(arr: pa.Array) -> pa.Array:
-    """The plain array behind dictionary and run-end encodings (no copy when plain)."""
-    while True:
-        if pa.types.is_dictionary(arr.type):
-            arr = arr.dictionary_decode()
-        elif pa.types.is_run_end_encoded(arr.type):
-            arr = pc.run_end_decode(arr)
-        else:
-            return arr
+def _through_encodings(arr: pa.Array, convert, fill) -> np.ndarray:
+    """``convert`` (a plain Arrow array -> numpy array, one row per element) applied to
+    the values behind dictionary and run-end encodings, then spread out to the rows.
+
+    The values are converted, not decoded first: a dictionary is converted once rather
+    than per row, and value types Arrow cannot gather (a polars Categorical's string_view)
+    work too.  Indices of any integer type; a null index gives ``fill``.
+    """
+    if pa.types.is_dictionary(arr.type):
+        values = _through_encodings(arr.dictionary, convert, fill)
+        indices = arr.indices
+        if indices.null_count:          # a null row points one past the values, at fill
+            values = np.concatenate([values, np.asarray([fill], values.dtype)])
+            indices = pc.fill_null(indices.cast(pa.int64()), len(values) - 1)
+        return values[indices.to_numpy(zero_copy_only=False)]
+    if pa.types.is_run_end_encoded(arr.type):
+        values = _through_encodings(arr.values, convert, fill)
+        ends = arr.run_ends.to_numpy(zero_copy_only=False)
+        rows = np.arange(arr.offset, arr.offset + len(arr))
+        return values[np.searchsorted(ends, rows, side="right")]
+    return convert(arr)
 
 
-def _to_float64(arr: pa.Array) -> np.ndarray:
-    arr = _decoded(arr)
+def _plain_float64(arr: pa.Array) -> np.ndarray:
+    if pa.types.is_decimal(arr.type):
+        # Arrow's decimal -> double cast is off by up to 2 ulps; through the decimal text
+        # the result is the correctly rounded double of the decimal value
+        arr = pc.cast(arr, pa.string())
     if arr.type != pa.float64():
         arr = pc.cast(arr, pa.float64(), safe=False)
     if arr.null_count:
         arr = pc.fill_null(arr, np.nan)
     return arr.to_numpy(zero_copy_only=False)
+
+
+def _to_float64(arr: pa.Array) -> np.ndarray:
+    return _through_encodings(arr, _plain_float64, np.nan)
 
 
 _PER_SECOND = {"s": 1, "ms": 1_000, "us": 1_000_000, "ns": 1_000_000_000}
@@ -240,21 +364,30 @@ def _to_seconds(arr: pa.Array):
     """Timestamps/dates as (int64 seconds, int64 nanoseconds in [0, 1e9), validity).
 
     Split into whole seconds and a remainder so that no date Arrow can hold overflows
-    (a cast to timestamp[ns] fails beyond the years 1677-2262).
+    (a cast to timestamp[ns] fails beyond the years 1677-2262).  A time-zone-aware
+    timestamp is stored as UTC, so every instant is compared in UTC; a naive one is
+    taken as UTC.
     """
-    arr = _decoded(arr)
+    parts = _through_encodings(arr, _plain_seconds, (0, 0, 0))
+    return parts[:, 0], parts[:, 1], parts[:, 2].astype(bool)
+
+
+def _plain_seconds(arr: pa.Array) -> np.ndarray:
+    """(n, 3) int64: seconds, nanoseconds and validity of plain timestamps or dates."""
     n = len(arr)
+    out = np.zeros((n, 3), np.int64)
     if pa.types.is_null(arr.type):
-        zeros = np.zeros(n, np.int64)
-        return zeros, zeros, np.zeros(n, bool)
-    valid = np.asarray(pc.is_valid(arr).to_numpy(zero_copy_only=False), bool)
+        return out
+    out[:, 2] = np.asarray(pc.is_valid(arr).to_numpy(zero_copy_only=False), bool)
     if pa.types.is_date32(arr.type):
         days = pc.fill_null(arr.cast(pa.int32()), 0).to_numpy(zero_copy_only=False)
-        return days.astype(np.int64) * 86400, np.zeros(n, np.int64), valid
+        out[:, 0] = days.astype(np.int64) * 86400
+        return out
     per = 1_000 if pa.types.is_date64(arr.type) else _PER_SECOND[arr.type.unit]
     v = pc.fill_null(arr.cast(pa.int64()), 0).to_numpy(zero_copy_only=False)
     secs, rem = np.divmod(v, per)
-    return secs, rem * (1_000_000_000 // per), valid
+    out[:, 0], out[:, 1] = secs, rem * (1_000_000_000 // per)
+    return out
 
 
 def _years_between(exp_s, exp_ns, ref_s, ref_ns, valid) -> np.ndarray:
@@ -277,16 +410,36 @@ def _years_between(exp_s, exp_ns, ref_s, ref_ns, valid) -> np.ndarray:
     return years
 
 
+# an ISO 8601 time of day followed by a zone designator: Z, +HH, +HHMM or +HH:MM
+_ZONED = re.compile(r"^(?P<local>.*\d:\d\d(?::\d\d(?:[.,]\d+)?)?)\s*"
+                    r"(?:(?P<utc>[zZ])|(?P<sign>[+-])(?P<hh>\d\d)(?::?(?P<mm>\d\d))?)$")
+
+
+def _parse_time(text: str) -> np.datetime64:
+    """An ISO 8601 date or time; with a zone designator, the instant it names (converted
+    to UTC); without one, taken as UTC.  numpy parses the part before the zone (in the
+    unit the text gives, down to nanoseconds; handed the zone, it would warn)."""
+    m = _ZONED.match(text.strip())
+    local = m.group("local") if m else text.strip()
+    try:
+        t = np.datetime64(local.replace(",", ".") if m else local)
+    except ValueError:
+        raise OptionError("as_of", "{option} {value!r} is neither a column of the input nor "
+                          "an ISO 8601 time", value=text) from None
+    if m and not m.group("utc"):
+        offset = np.timedelta64(int(m.group("hh")) * 60 + int(m.group("mm") or 0), "m")
+        t = t - offset if m.group("sign") == "+" else t + offset
+    return t
+
+
 def _scalar_time(value) -> tuple[int, int]:
     """A scalar as_of (datetime, date, numpy datetime64, ISO string, Arrow scalar) as
-    (seconds since the epoch, nanoseconds in [0, 1e9)); naive times are UTC."""
+    (seconds since the epoch, nanoseconds in [0, 1e9)).  Aware times are converted to
+    UTC; naive times are UTC."""
     if isinstance(value, pa.Scalar):
         value = value.as_py()
     if isinstance(value, str):
-        try:
-            value = np.datetime64(value)
-        except ValueError:
-            raise ValueError(f"as_of={value!r} is neither a column nor a timestamp") from None
+        value = _parse_time(value)
     if isinstance(value, _dt.datetime):
         if value.tzinfo is not None:
             value = value.astimezone(_dt.timezone.utc).replace(tzinfo=None)
@@ -296,7 +449,7 @@ def _scalar_time(value) -> tuple[int, int]:
         return (value - _dt.date(1970, 1, 1)).days * 86400, 0
     if isinstance(value, np.datetime64):
         if np.isnat(value):
-            raise ValueError("as_of is NaT (not a time)")
+            raise OptionError("as_of", "{option} is NaT (not a time)")
         unit, count = np.datetime_data(value.dtype)
         if unit in ("Y", "M", "W", "D", "h", "m", "generic"):
             return int(value.astype("datetime64[s]").astype(np.int64)), 0
@@ -328,17 +481,19 @@ def _bool_call_put(arr: pa.Array) -> np.ndarray:
 
 def _to_call_put(arr: pa.Array) -> np.ndarray:
     """+1 call, -1 put, 0 for null or an unrecognised word (gives status missing_input)."""
-    arr = _decoded(arr)
+    return _through_encodings(arr, _plain_call_put, 0).astype(np.int8, copy=False)
+
+
+def _plain_call_put(arr: pa.Array) -> np.ndarray:
     if pa.types.is_null(arr.type):
         return np.zeros(len(arr), np.int8)
-    if _is_string_view(arr.type):
-        arr = arr.cast(pa.large_string())
     if pa.types.is_boolean(arr.type):
         return _bool_call_put(arr)
-    else:
-        words = pc.utf8_lower(pc.utf8_trim_whitespace(arr))
-        cp = pc.if_else(pc.is_in(words, pa.array(_CALL_WORDS)), pa.scalar(1, pa.int8()),
-                        pc.if_else(pc.is_in(words, pa.array(_PUT_WORDS)),
-                                   pa.scalar(-1, pa.int8()), pa.scalar(0, pa.int8())))
+    if _is_string_view(arr.type):
+        arr = arr.cast(pa.large_string())
+    words = pc.utf8_lower(pc.utf8_trim_whitespace(arr))
+    cp = pc.if_else(pc.is_in(words, pa.array(_CALL_WORDS)), pa.scalar(1, pa.int8()),
+                    pc.if_else(pc.is_in(words, pa.array(_PUT_WORDS)),
+                               pa.scalar(-1, pa.int8()), pa.scalar(0, pa.int8())))
     cp = pc.fill_null(cp, pa.scalar(0, pa.int8()))
     return cp.to_numpy(zero_copy_only=False).astype(np.int8, copy=False)

@@ -56,7 +56,8 @@ def status_column(codes: np.ndarray) -> pa.DictionaryArray:
     """Dictionary-encoded status over the int8 codes (no copy).
 
     The codes are the kernel's (every row written, every value one of ``status.NAMES``),
-    so Arrow's bounds check of the indices (a pass over the column) is skipped; tests/test_api.py checks every status value against the vocabulary.
+    so Arrow's bounds check of the indices (a pass over the column) is skipped;
+    tests/test_api.py checks every status value against the vocabulary.
     """
     codes = np.ascontiguousarray(codes, dtype=np.int8)
     indices = pa.Array.from_buffers(pa.int8(), len(codes), [None, pa.py_buffer(codes)])

@@ -26,6 +26,7 @@ from volsweep.kernel import greeks as _greeks
 from volsweep.kernel import registry as _registry
 from volsweep.kernel._jit import BLOCK as _BLOCK
 
+from volsweep.kernel.registry import DEFAULT_MODEL
 from ._columns import ColumnPlan
 from .loader import load_kernel, served_mask
 from ._input import as_batches
@@ -258,7 +259,7 @@ def _freeze(value):
     return value
 
 
-def prepare(operation: str, schema: pa.Schema, *, model: str = "bsm", which=None,
+def prepare(operation: str, schema: pa.Schema, *, model: str = DEFAULT_MODEL, which=None,
             units: str = "raw", columns: dict | None = None, as_of=None) -> Prepared:
     """The operation ``operation`` ("price", "implied_vol", "greeks" or "sweep") prepared
     for input batches of ``schema`` with these options: the column plan, every schema check
@@ -289,7 +290,8 @@ def _run(operation, data, **options) -> pa.Table:
     return pa.Table.from_batches([prep(b) for b in batches], schema=prep.out_schema)
 
 
-def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
+def price(data, model: str = DEFAULT_MODEL, columns: dict | None = None, *,
+          as_of=None) -> pa.Table:
     """Model prices of European options at the volatility in the ``vol`` column.
 
     ``model``: a name of the registry (``volsweep.MODELS``; ``"bsm"`` on ``spot`` with a
@@ -300,7 +302,8 @@ def price(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) 
     return _run("price", data, model=model, columns=columns, as_of=as_of)
 
 
-def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=None) -> pa.Table:
+def implied_vol(data, model: str = DEFAULT_MODEL, columns: dict | None = None, *,
+                as_of=None) -> pa.Table:
     """Implied volatilities from market prices.
 
     From a ``premium`` column: adds ``iv`` and ``status``.  From ``bid`` and ``ask``: adds
@@ -312,7 +315,7 @@ def implied_vol(data, model: str = "bsm", columns: dict | None = None, *, as_of=
     return _run("implied_vol", data, model=model, columns=columns, as_of=as_of)
 
 
-def greeks(data, model: str = "bsm", which=None, units: str = "raw",
+def greeks(data, model: str = DEFAULT_MODEL, which=None, units: str = "raw",
            columns: dict | None = None, *, as_of=None) -> pa.Table:
     """Analytic Greeks at the volatility in the ``vol`` column.
 
@@ -326,7 +329,7 @@ def greeks(data, model: str = "bsm", which=None, units: str = "raw",
                 as_of=as_of)
 
 
-def sweep(data, model: str = "bsm", which=None, units: str = "raw",
+def sweep(data, model: str = DEFAULT_MODEL, which=None, units: str = "raw",
           columns: dict | None = None, *, as_of=None) -> pa.Table:
     """Implied vol from the quote, then the Greeks at that vol, in one kernel pass.
 

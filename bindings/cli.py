@@ -10,8 +10,9 @@ Commands:
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
 date=2031-03-14/ add their key as a column), an Arrow IPC file or stream, or a .csv file.
-Inputs are streamed in batches (memory stays bounded whatever the size); OUT is Parquet,
-written to a temporary file and renamed on success, so a failure leaves no partial OUT.
+Inputs are streamed in batches (memory stays bounded whatever the size); OUT is written in
+the format its name says (.parquet, .csv, .csv.gz, .arrow, .feather, .ipc) to a temporary
+file and renamed on success, so a failure leaves no partial OUT.
 """
 
 from __future__ import annotations
@@ -21,24 +22,60 @@ import os
 import sys
 import textwrap
 import time
+import warnings
 from collections import Counter
 
 import pyarrow as pa
 import pyarrow.parquet as pq
+
+from volsweep.kernel.registry import DEFAULT_MODEL
 
 
 class CliError(Exception):
     """A user-facing error: printed as one line, exit status 2."""
 
 
+# the flags that set the options an OptionError names (bindings/_columns.py)
+CLI_WORDS = {"columns": "--map", "as_of": "--as-of", "quotes": "--quotes",
+             "keep": "--keep-columns", "unmap": "--map {name}="}
+
+
 def _mapping(pairs) -> dict:
+    """--map OURS=THEIRS ... as ``columns=``; ``OURS=`` (nothing after '=') maps the input
+    to no column."""
     out = {}
     for pair in pairs or ():
         ours, sep, theirs = pair.partition("=")
-        if not sep or not ours or not theirs:
-            raise CliError(f"--map expects OURS=THEIRS (e.g. strike=K), got {pair!r}")
-        out[ours] = theirs
+        if not sep or not ours:
+            raise CliError(f"--map expects OURS=THEIRS (e.g. strike=K), or OURS= for no "
+                           f"column, got {pair!r}")
+        out[ours] = theirs or None
     return out
+
+
+def _in_our_words(message) -> str:
+    """An error's or warning's text, with the flags the user typed where it names an
+    option (``--map`` for ``columns=``), as one line."""
+    from ._columns import Worded
+
+    text = message.render(CLI_WORDS) if isinstance(message, Worded) else str(message)
+    return (text.strip() or type(message).__name__).splitlines()[0]
+
+
+def _say_warnings(caught) -> None:
+    """Warnings raised while planning (an input column the model does not read), as lines
+    of our own on stderr."""
+    for w in caught:
+        print(f"volsweep: warning: {_in_our_words(w.message)}", file=sys.stderr)
+
+
+def _planned(build, *args, **kwargs):
+    """``build(*args, **kwargs)`` (a column plan), its warnings said on stderr."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        plan = build(*args, **kwargs)
+    _say_warnings(caught)
+    return plan
 
 
 def _status_summary(tables) -> str:
@@ -50,41 +87,61 @@ def _status_summary(tables) -> str:
     return status_table(counts)
 
 
-def _open(args):
+def _open(args, columns: dict):
+    from ._columns import numeric_columns
+    from .atomic_parquet import check_output
     from .input_files import open_input
 
     if args.batch_rows < 1:
         raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
-    return open_input(args.input, args.batch_rows)
+    check_output(args.output, args.overwrite)     # before any reading or planning
+    return open_input(args.input, args.batch_rows, numbers=numeric_columns(columns))
 
 
-def _stream(args, source, transform, out_schema, verb: str, dictionary=None) -> int:
+def _summary(statuses, high_vols, unreadable, schema) -> str:
+    """The closing summary: statuses, vols above the bound, cells read as missing."""
+    from .status_counts import high_vol_lines, status_table, unreadable_lines
+
+    lines = [status_table(statuses)] if statuses else []
+    return "\n".join(lines + high_vol_lines(high_vols) + unreadable_lines(unreadable, schema))
+
+
+def _stream(args, source, transform, out_schema, verb: str, dictionary=None,
+            vol_columns=()) -> int:
     from .progress import Progress
-    from .status_counts import status_table
     from .stream_to_parquet import stream_to_parquet
 
     res = stream_to_parquet(source, args.output, transform, out_schema,
                             overwrite=args.overwrite, progress=Progress(source.num_rows),
-                            dictionary=dictionary)
+                            dictionary=dictionary, vol_columns=vol_columns)
     rate = res.rows / res.seconds if res.seconds > 0 else 0.0
     print(f"{verb} {res.rows:,d} rows in {res.seconds:.2f} s ({rate / 1e6:.2f} M rows/s) "
           f"-> {args.output}", file=sys.stderr)
-    print(status_table(res.statuses), file=sys.stderr)
+    print(_summary(res.statuses, res.high_vols, source.unreadable, source.schema),
+          file=sys.stderr)
     return 0
 
 
+_DEMO_CALLS = 5
+
+
 def cmd_demo(args) -> int:
+    import numba
+
     import volsweep
     from volsweep.data_gen import make_snapshot
 
     t0 = time.perf_counter()
-    snap = make_snapshot(n_rows=args.rows, seed=args.seed)
+    snap = make_snapshot(n_rows=_rows_arg(args, 1), seed=args.seed)
     t_gen = time.perf_counter() - t0
     print(f"synthetic snapshot: {snap.num_rows:,d} contracts on "
           f"{len(snap.column('underlying').unique()):,d} fictional underlyings "
           f"(generated in {t_gen:.2f} s)")
     print("loading compiled kernels (the first run on a machine compiles them: minutes)",
           flush=True)
+    t0 = time.perf_counter()
+    volsweep.warmup(models=DEFAULT_MODEL)
+    print(f"kernels ready in {time.perf_counter() - t0:.1f} s")
     cols = {"vol": "true_vol"}
     quotes = snap.drop_columns(["bid", "ask"])
     steps = (
@@ -92,29 +149,52 @@ def cmd_demo(args) -> int:
         ("implied vol (from the premium)", lambda t: volsweep.implied_vol(t)),
         ("sweep (iv + all 16 Greeks)", lambda t: volsweep.sweep(t)),
     )
+    print("\n" + textwrap.fill(
+        f"Table-level calls (Arrow in and out) on {numba.get_num_threads()} threads; each "
+        f"rate is the median of {_DEMO_CALLS} calls after one untimed call, which maps "
+        "fresh output memory (in a new process that first call runs several times "
+        "slower).", 88))
     for label, fn in steps:
-        fn(quotes.slice(0, 5000))  # warm-up: loads the row and the parallel kernels
-        times, out = [], None
-        for _ in range(3):         # the first call also maps fresh output memory
+        out = fn(quotes)           # untimed: the output memory, then reused by later calls
+        times = []
+        for _ in range(_DEMO_CALLS):
             out = None             # release the last result first, as a loop over
             t0 = time.perf_counter()   # snapshots would: its memory serves the next one
             out = fn(quotes)
             times.append(time.perf_counter() - t0)
-        dt = sorted(times)[1]
-        print(f"\n{label}: {snap.num_rows / dt / 1e6:,.1f} M contracts/s "
-              f"(median of 3 calls; first call {snap.num_rows / times[0] / 1e6:,.1f})")
+        rates = sorted(snap.num_rows / t / 1e6 for t in times)
+        print(f"\n{label}: {rates[len(rates) // 2]:,.1f} M contracts/s "
+              f"(range {rates[0]:,.1f}-{rates[-1]:,.1f})")
         print(_status_summary([out]))
+    print("\n" + textwrap.fill(
+        "The README's Speed figures are kernel-level rates on 2M rows (make bench); "
+        "table-level calls run at about 0.7-1.0 of them, and less on a busy machine.", 88))
     print("Outputs are model values, not investment advice.")
     return 0
+
+
+def _rows_arg(args, least: int) -> int:
+    if args.rows < least:
+        raise CliError(f"-n/--rows must be >= {least}, got {args.rows}")
+    return args.rows
 
 
 def cmd_gen(args) -> int:
     from volsweep.data_gen import make_snapshot, write_snapshot
 
-    if os.path.exists(args.output) and not args.overwrite:
-        raise CliError(f"{args.output} exists (use --overwrite)")
-    snap = make_snapshot(n_rows=args.rows, seed=args.seed, bad_fraction=args.bad_fraction)
-    write_snapshot(snap, args.output)
+    from .atomic_parquet import AtomicWriter, check_output, output_format
+
+    check_output(args.output, args.overwrite)
+    if not 0.0 <= args.bad_fraction <= 1.0:
+        raise CliError(f"--bad-fraction must be between 0 and 1, got {args.bad_fraction}")
+    snap = make_snapshot(n_rows=_rows_arg(args, 0), seed=args.seed,
+                         bad_fraction=args.bad_fraction)
+    if output_format(args.output) == "parquet":
+        write_snapshot(snap, args.output)       # the snapshot's own row groups and codec
+    else:
+        with AtomicWriter(args.output, snap.schema) as w:
+            w.write(snap)
+            w.commit()
     print(f"wrote {snap.num_rows:,d} rows to {args.output}")
     return 0
 
@@ -123,11 +203,12 @@ def cmd_price(args) -> int:
     from .api import prepare
     from .atomic_parquet import dictionary_columns
 
-    source = _open(args)
-    priced = prepare("price", source.schema, model=args.model, columns=_mapping(args.map),
-                     as_of=args.as_of)
+    columns = _mapping(args.map)
+    source = _open(args, columns)
+    priced = _planned(prepare, "price", source.schema, model=args.model, columns=columns,
+                      as_of=args.as_of)
     return _stream(args, source, priced, priced.out_schema, "priced",
-                   dictionary_columns(priced.out_schema))
+                   dictionary_columns(priced.out_schema), (priced.plan.source["vol"],))
 
 
 def _greeks_arg(text: str):
@@ -165,9 +246,10 @@ def cmd_sweep(args) -> int:
     from .sweep_plan import SweepPlan
 
     options = _sweep_options(args)
-    source = _open(args)
-    plan = SweepPlan.build(source.schema, **options)
-    return _stream(args, source, plan.transform, plan.out_schema, "swept", plan.dictionary)
+    source = _open(args, options["columns"])
+    plan = _planned(SweepPlan.build, source.schema, **options)
+    return _stream(args, source, plan.transform, plan.out_schema, "swept", plan.dictionary,
+                   plan.vol_columns)
 
 
 def cmd_backfill(args) -> int:
@@ -177,7 +259,6 @@ def cmd_backfill(args) -> int:
         raise CliError("volsweep backfill needs Dask: pip install 'volsweep[dask]'") from None
     from .dask_backfill import backfill
     from .progress import Progress
-    from .status_counts import status_table
 
     if args.batch_rows < 1:
         raise CliError(f"--batch-rows must be >= 1, got {args.batch_rows}")
@@ -185,15 +266,16 @@ def cmd_backfill(args) -> int:
         raise CliError(f"--workers must be >= 1, got {args.workers}")
     from .dask_backfill import find_partitions
 
-    total = len(find_partitions(args.src))
-    res = backfill(args.src, args.dst, scheduler=args.scheduler, n_workers=args.workers,
-                   batch_rows=args.batch_rows, progress=Progress(total, unit="partitions"),
-                   **_sweep_options(args))
+    parts = find_partitions(args.src)
+    res = _planned(backfill, args.src, args.dst, scheduler=args.scheduler,
+                   n_workers=args.workers, batch_rows=args.batch_rows,
+                   progress=Progress(len(parts), unit="partitions"), **_sweep_options(args))
     print(f"backfill: {res.partitions:,d} partitions ({res.written:,d} written, "
           f"{res.skipped:,d} already complete), {res.rows_written:,d} rows written in "
           f"{res.seconds:.1f} s -> {args.dst}", file=sys.stderr)
-    if res.statuses:
-        print(status_table(res.statuses), file=sys.stderr)
+    summary = _summary(res.statuses, res.high_vols, res.unreadable, res.schema)
+    if summary:
+        print(summary, file=sys.stderr)
     return 0
 
 
@@ -230,7 +312,9 @@ def _default_batch_rows() -> int:
 def _io_args(p) -> None:
     p.add_argument("input", metavar="IN",
                    help="Parquet file or folder, Arrow IPC file or stream, or .csv file")
-    p.add_argument("-o", "--output", required=True, metavar="OUT", help="Parquet file to write")
+    p.add_argument("-o", "--output", required=True, metavar="OUT",
+                   help="file to write, in the format its name says: .parquet, .csv, "
+                   ".csv.gz, or Arrow IPC .arrow/.feather/.ipc")
     p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
     p.add_argument("--batch-rows", type=int, default=_default_batch_rows(), metavar="N",
                    help="rows per batch: bounds memory (default: %(default)s)")
@@ -238,18 +322,20 @@ def _io_args(p) -> None:
 
 def _map_args(p) -> None:
     p.add_argument("--map", action="append", metavar="OURS=THEIRS",
-                   help="use column THEIRS for input OURS, e.g. strike=K (repeatable)")
-    p.add_argument("--as-of", help="valuation time when expiries are timestamps (a time, or "
-                   "the name of a column)")
+                   help="use column THEIRS for input OURS, e.g. strike=K; OURS= for no "
+                   "column (repeatable)")
+    p.add_argument("--as-of", help="valuation time when expiries are timestamps: the name of "
+                   "a column, or an ISO 8601 time (with a zone such as Z or +01:00, "
+                   "converted to UTC; without one, taken as UTC)")
 
 
 def _model_arg(p) -> None:
     """--model: the registry's models, each with its underlying and one-line doc."""
-    from volsweep.kernel.registry import MODELS
+    from volsweep.kernel.registry import DEFAULT_MODEL, MODELS
 
     lines = "; ".join(f"{m.name}: {m.doc}, on {m.underlying}"
                       + "".join(f" with {x.name}" for x in m.extras) for m in MODELS.values())
-    p.add_argument("--model", default="bsm", choices=list(MODELS),
+    p.add_argument("--model", default=DEFAULT_MODEL, choices=list(MODELS),
                    help=f"{lines.replace('%', '%%')} (default: %(default)s)")
 
 
@@ -283,7 +369,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     g = sub.add_parser("gen", help="write a synthetic snapshot to Parquet")
     g.add_argument("-n", "--rows", type=int, default=1_000_000)
-    g.add_argument("-o", "--output", required=True)
+    g.add_argument("-o", "--output", required=True,
+                   help=".parquet, .csv, .csv.gz, .arrow, .feather or .ipc")
     g.add_argument("--seed", type=int, default=0)
     g.add_argument("--bad-fraction", type=float, default=0.01)
     g.add_argument("--overwrite", action="store_true")
@@ -345,8 +432,7 @@ def main(argv=None) -> int:
         print(f"volsweep: error: {exc}", file=sys.stderr)
         return 2
     except (ValueError, TypeError, OSError) as exc:
-        text = (str(exc).strip() or type(exc).__name__).splitlines()[0]
-        print(f"volsweep: error: {text}", file=sys.stderr)
+        print(f"volsweep: error: {_in_our_words(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("volsweep: interrupted", file=sys.stderr)

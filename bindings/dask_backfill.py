@@ -32,6 +32,8 @@ from dataclasses import dataclass, field
 
 import pyarrow.parquet as pq
 
+from volsweep.kernel.registry import DEFAULT_MODEL
+from ._columns import OptionError, numeric_columns
 from .atomic_parquet import stale_temps
 from .file_errors import StreamError, one_line
 from .input_files import DEFAULT_BATCH_ROWS, data_files, open_input
@@ -57,6 +59,9 @@ class BackfillResult:
     rows_skipped: int
     seconds: float
     statuses: dict = field(default_factory=dict)
+    high_vols: Counter = field(default_factory=Counter)   # vol column -> rows above the bound
+    unreadable: Counter = field(default_factory=Counter)  # column -> CSV cells read as null
+    schema: object = None         # the input schema (of the first partition)
     workers: list = field(default_factory=list)    # per task: (pid, numba threads, compiled)
     kernels: set = field(default_factory=set)      # kernel source hashes the tasks ran
 
@@ -135,8 +140,10 @@ def _misses() -> int:
 
     from numba.core.registry import CPUDispatcher
 
+    # type(), not isinstance(): isinstance asks an object for its __class__, which some
+    # objects alive in the process (numpy's NpzFile attribute bags) answer with an error
     return sum(o.stats.cache_misses.total() for o in gc.get_objects()
-               if isinstance(o, CPUDispatcher)
+               if issubclass(type(o), CPUDispatcher)
                and getattr(o.py_func, "__module__", "").startswith("volsweep.kernel"))
 
 
@@ -150,8 +157,7 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
                 kernel=kernel_source_hash().hex()[:16])
     try:
-        source = open_input(os.path.dirname(part.files[0]), batch_rows, files=part.files,
-                            partitioning=None)
+        source = _open_partition(part, batch_rows, options)
         plan = SweepPlan.build(source.schema, **options)
         done = _complete_rows(target, part.files, plan.stamp)
         if done is not None:
@@ -159,11 +165,21 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
         os.makedirs(out_dir, exist_ok=True)
         before = _misses()
         res = stream_to_parquet(source, target, plan.transform, plan.out_schema,
-                                overwrite=True, dictionary=plan.dictionary)
+                                overwrite=True, dictionary=plan.dictionary,
+                                vol_columns=plan.vol_columns)
+    except OptionError as exc:
+        raise exc.within(f"partition {part.rel}") from None
     except (ValueError, TypeError, OSError) as exc:
         raise StreamError(f"partition {part.rel}: {one_line(exc)}") from None
     info["compiled"] = _misses() - before
-    return dict(info, state="written", rows=res.rows, statuses=res.statuses)
+    return dict(info, state="written", rows=res.rows, statuses=res.statuses,
+                high_vols=res.high_vols, unreadable=source.unreadable)
+
+
+def _open_partition(part: Partition, batch_rows: int, options: dict):
+    """One partition's files as one input (CSV numeric inputs read as numbers)."""
+    return open_input(os.path.dirname(part.files[0]), batch_rows, files=part.files,
+                      partitioning=None, numbers=numeric_columns(options["columns"]))
 
 
 def _clean_temps(dst_root: str, parts) -> None:
@@ -184,7 +200,7 @@ def worker_environ() -> dict:
     return env
 
 
-def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as_of=None,
+def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None, as_of=None,
              quotes="auto", keep=None, scheduler=None, n_workers=None,
              batch_rows=DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
     """Sweep every partition of the dataset ``src`` into the same partitions under ``dst``.
@@ -207,8 +223,8 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
     parts = find_partitions(src)
     options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of,
                    quotes=quotes, keep=keep)
-    first = open_input(parts[0].files[0], batch_rows, files=parts[0].files, partitioning=None)
-    plan = SweepPlan.build(first.schema, **options)   # schema errors now
+    schema = _open_partition(parts[0], batch_rows, options).schema
+    plan = SweepPlan.build(schema, **options)       # schema errors now
     os.makedirs(dst, exist_ok=True)
     _clean_temps(dst, parts)
     # complete partitions are skipped here (no cluster at all for a finished backfill) and
@@ -229,15 +245,19 @@ def backfill(src, dst, *, model="bsm", which=None, units="raw", columns=None, as
         progress.close()
     _clean_temps(dst, parts)
     statuses: dict = {}
+    high_vols, unreadable = Counter(), Counter()
     for r in results:
         for col, counts in r["statuses"].items():
             statuses.setdefault(col, Counter()).update(counts)
+        high_vols.update(r.get("high_vols", {}))
+        unreadable.update(r.get("unreadable", {}))
     written = [r for r in results if r["state"] == "written"]
     skipped = [r for r in results if r["state"] == "skipped"]
     return BackfillResult(
         partitions=len(parts), written=len(written), skipped=len(skipped),
         rows_written=sum(r["rows"] for r in written), rows_skipped=sum(r["rows"] for r in skipped),
-        seconds=time.perf_counter() - t0, statuses=statuses,
+        seconds=time.perf_counter() - t0, statuses=statuses, high_vols=high_vols,
+        unreadable=unreadable, schema=schema,
         workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r],
         kernels={r["kernel"] for r in results if "kernel" in r})
 

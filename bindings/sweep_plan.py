@@ -10,7 +10,8 @@ from dataclasses import dataclass
 
 import pyarrow as pa
 
-from ._columns import KNOWN_NAMES
+from volsweep.kernel.registry import DEFAULT_MODEL
+from ._columns import KNOWN_NAMES, OptionError
 from ._output import check_no_clash
 from .atomic_parquet import dictionary_columns
 
@@ -40,9 +41,9 @@ def _choose_quote(names, columns: dict, quotes: str) -> set:
     elif quotes == "auto" and ("bid" in columns or "ask" in columns):
         quotes = "bid-ask"
     if quotes == "auto" and has_prem and has_sides:
-        raise ValueError(f"the input has both {prem!r} and {'/'.join(map(repr, sides))}: "
-                         "choose the quote to invert (--quotes premium or bid-ask; "
-                         "quotes= in Python)")
+        raise OptionError("quotes", "the input has both {prem!r} and {sides}: choose the "
+                          "quote to invert with {option} ('premium' or 'bid-ask')",
+                          prem=prem, sides="/".join(map(repr, sides)))
     if quotes == "premium" and not has_prem:
         raise ValueError(f"missing column {prem!r}: required for the premium quote")
     if quotes == "bid-ask" and not all(s in names for s in sides):
@@ -56,7 +57,8 @@ def _kept_positions(names, keep) -> list:
         return list(range(len(names)))      # by position: duplicate names are kept too
     for k in keep:
         if k not in names:
-            raise ValueError(f"missing column {k!r}: asked to keep it")
+            raise OptionError("keep", "{option} names column {k!r}, which the input does "
+                              "not have", k=k)
         if names.count(k) > 1:
             raise ValueError(f"column {k!r} appears more than once in the input")
     return [names.index(k) for k in keep]
@@ -81,7 +83,7 @@ class SweepPlan:
     prepared: object
 
     @classmethod
-    def build(cls, schema: pa.Schema, *, model="bsm", which=None, units="raw", columns=None,
+    def build(cls, schema: pa.Schema, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None,
               as_of=None, quotes="auto", keep=None) -> "SweepPlan":
         from .api import prepare
 
@@ -102,6 +104,12 @@ class SweepPlan:
         outputs = [prepared.out_schema.field(n) for n in prepared.outputs]
         out_schema = pa.schema(list(kept_schema) + outputs, metadata=meta)
         return cls(readable, kept, out_schema, len(outputs), prepared)
+
+    @property
+    def vol_columns(self) -> tuple:
+        """The implied vols among the outputs (counted above the plausibility bound)."""
+        return tuple(n for n in ("iv_bid", "iv_ask", "iv") if n in self.out_schema.names[
+            len(self.kept):])
 
     @property
     def dictionary(self) -> list:

@@ -40,7 +40,7 @@ true_vol        float64                      the SVI vol the quote was made from
 model_price     float64                      BSM price at true_vol, unrounded
 premium         float64                      model mid on the tick grid
 bid, ask        float64                      quotes on the tick grid
-quote_flag      dictionary<int8, string>     clean, crossed, below_intrinsic, zero_bid,
+quote_flag      dictionary<int8, string>     clean, crossed, premium_too_low, zero_bid,
                                              nan, bad_strike, expired
 =============== ============================ ==============================================
 

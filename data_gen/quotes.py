@@ -8,7 +8,7 @@ TICK_LOW = 0.01
 TICK_HIGH = 0.05
 
 # quote_flag dictionary, in code order; code 0 is a clean quote.
-FLAGS = ("clean", "crossed", "below_intrinsic", "zero_bid", "nan", "bad_strike", "expired")
+FLAGS = ("clean", "crossed", "premium_too_low", "zero_bid", "nan", "bad_strike", "expired")
 CLEAN, CROSSED, BELOW_INTRINSIC, ZERO_BID, NAN, BAD_STRIKE, EXPIRED = range(len(FLAGS))
 
 # Share of the bad rows given to each kind (normalised).
@@ -28,7 +28,7 @@ BAD_MIX = {
 EXPECTED_STATUS = {
     "clean": "ok",
     "crossed": "crossed_quote",
-    "below_intrinsic": "below_intrinsic",
+    "premium_too_low": "premium_too_low",
     "zero_bid": "zero_bid",
     "nan": "missing_input",
     "bad_strike": "bad_strike",

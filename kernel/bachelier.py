@@ -257,7 +257,7 @@ def bachelier_implied_vol(P, F, K, T, D, cp):
     # sigma = |x| / (u sqrt(T)), or the near-the-money form: one division for either
     sig = (SQRT2PI * (tv + 0.5 * ax) if near else ax) / (sqT if near else u * sqT)
     st = S.NO_TIME_VALUE if not (tvs > 0.0) else S.OK
-    st = S.BELOW_INTRINSIC if (tvs < 0.0 or P < 0.0) else st
+    st = S.PREMIUM_TOO_LOW if (tvs < 0.0 or P < 0.0) else st
     st = S.NON_FINITE_INPUT if abs(P) == INF else st
     st = S.MISSING_INPUT if P != P else st
     return sig, st
@@ -368,8 +368,12 @@ def _iv_par(premium, F, K, T, D, cp, iv_out, status_out):
                  status_out)
 
 
+# registered with kernel/greeks.py, so ``greeks._kernel("bachelier", mask)`` serves it too
+_greeks._TEMPLATES["bachelier"] = (_greeks_rows_template, _greeks.par_template0)
+
+
 def _greek_loops(mask):
-    return _greeks.mask_loops(_greeks_rows_template, _greeks.par_template0, "bachelier", mask)
+    return _greeks._kernel("bachelier", mask)
 
 
 # ------------------------------------------------------------------ entry points

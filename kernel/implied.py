@@ -150,8 +150,8 @@ def normalised_time_value(P, F, K, D, cp):
     underflow for tiny premiums); rs = r e^lsc is the same ratio kept in range (lsc = 0,
     or 200 ln 2 for premiums below 2^-800), so ln r = ln rs - lsc; c = (U - P/D) / A is
     1 - r formed from the inputs, U = F for calls and K for puts.  status is OK,
-    MISSING_INPUT / NON_FINITE_INPUT (premium NaN / inf), BELOW_INTRINSIC,
-    ABOVE_UPPER_BOUND or NO_TIME_VALUE.
+    MISSING_INPUT / NON_FINITE_INPUT (premium NaN / inf), PREMIUM_TOO_LOW,
+    PREMIUM_TOO_HIGH or NO_TIME_VALUE.
     Valid F, K, D > 0 and cp = +-1 are assumed.
     """
     call = cp > 0.0
@@ -168,8 +168,8 @@ def normalised_time_value(P, F, K, D, cp):
     u1, eu = _two_diff(U, q1)
     c = (u1 + (eu - q1lo)) * invA
     st = S.NO_TIME_VALUE if not (rs > 0.0) else S.OK
-    st = S.ABOVE_UPPER_BOUND if fma(-D, U, P) >= 0.0 else st
-    st = S.BELOW_INTRINSIC if (tv < 0.0 or P < 0.0) else st
+    st = S.PREMIUM_TOO_HIGH if fma(-D, U, P) >= 0.0 else st
+    st = S.PREMIUM_TOO_LOW if (tv < 0.0 or P < 0.0) else st
     st = S.NON_FINITE_INPUT if _is_inf(P) else st
     st = S.MISSING_INPUT if _is_nan(P) else st
     return r, rs, lsc, c, st

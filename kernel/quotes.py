@@ -10,7 +10,8 @@ bindings used to make three implied-vol passes and a Greeks pass).
 Statuses (priority in kernel/status.py): the input problems of a row (and of a side's own
 quote: null, NaN or +-inf) stay; above the premium's own problems, a crossed quote
 (bid > ask) is ``crossed_quote`` on every side without an input problem, and a bid at or
-below zero is ``zero_bid`` on the bid and the mid (the ask keeps its vol).  ``iv_spread_uncertainty`` = (ask - bid) / 2 / vega at the mid vol,
+below zero is ``zero_bid`` on the bid and the mid (the ask keeps its vol).
+``iv_spread_uncertainty`` = (ask - bid) / 2 / vega at the mid vol,
 NaN where the mid has no vol.
 """
 
@@ -91,11 +92,15 @@ def _template1(bid, ask, mid, U, K, T, D, X, cp, iv_bid, iv_ask, iv, unc, out, s
 _TEMPLATES = (_template0, _template1)
 
 
+def _vega_row(mask):
+    """The row of vega in ``out`` for a mask holding it."""
+    return bin(mask & (_VEGA - 1)).count("1")
+
+
 @functools.lru_cache(maxsize=None)
 def _kernel(iv_rows, greek_rows, n_extras, model, mask):
-    vega_row = bin(mask & (_VEGA - 1)).count("1")
     return loop(specialise(_TEMPLATES[n_extras], f"bid_ask_{model}_{mask:04x}", IV=iv_rows,
-                           GREEKS=greek_rows, VEGA_ROW=vega_row))
+                           GREEKS=greek_rows, VEGA_ROW=_vega_row(mask)))
 
 
 def mid_price(bid, ask):
@@ -125,9 +130,18 @@ def run(model, iv_rows, greek_loops, bid, ask, inputs, cp, mask, outs):
         _args.output(name, arr, (n,), np.int8)
     (mid,) = _args.floats(mid_price(bid, ask))
     scratch = np.empty(n, np.int8)     # the Greeks' own statuses (the iv's take priority)
-    _kernel(iv_rows, greek_loops(mask)[0], len(inputs) - 4, model, mask)(
-        bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out, st_bid, st_ask, status,
-        scratch)
+    greek_rows = greek_loops(mask)[0]
+    if n <= BLOCK:          # one block: the same row loops, without a parallel launch
+        iv_rows(0, n, bid, *inputs, cp, iv_bid, st_bid)
+        iv_rows(0, n, ask, *inputs, cp, iv_ask, st_ask)
+        iv_rows(0, n, mid, *inputs, cp, iv, status)
+        greek_rows(0, n, *inputs, iv, cp, out, scratch)
+        _quote_rows(0, n, bid, ask, iv_bid, iv_ask, iv, st_bid, st_ask, status,
+                    out[_vega_row(mask)], unc)
+    else:
+        _kernel(iv_rows, greek_rows, len(inputs) - 4, model, mask)(
+            bid, ask, mid, *inputs, cp, iv_bid, iv_ask, iv, unc, out, st_bid, st_ask, status,
+            scratch)
     return _greeks.take_nonfinite_flags(scratch)
 
 

@@ -156,6 +156,7 @@ MODELS = {
 }
 
 MODEL_NAMES = tuple(MODELS)
+DEFAULT_MODEL = "bsm"     # the model of every function and command that is not told one
 
 
 OPERATIONS = {

@@ -17,7 +17,7 @@ afterwards.  Priority, highest first (a row gets the first that applies):
    implied vol that is not a finite double is ``out_of_range``;
 2. quote problems of a bid/ask pair: ``crossed_quote`` (on each side without an input
    problem), then ``zero_bid`` (the bid and the mid);
-3. the premium's own problems, per side: ``below_intrinsic``, ``above_upper_bound``,
+3. the premium's own problems, per side: ``premium_too_low``, ``premium_too_high``,
    ``no_time_value``.
 
 A rate is turned into a discount factor by ``black.discount_factors``, which carries the
@@ -39,8 +39,8 @@ EXPIRED = 6            # time to expiry <= 0
 OUT_OF_RANGE = 7       # discount factor <= 0 (or e^{-rT} not representable), a derived
 #                        forward or the output itself not a finite double
 # implied volatility
-BELOW_INTRINSIC = 8    # premium below the discounted intrinsic value (or negative)
-ABOVE_UPPER_BOUND = 9  # premium at or above the no-arbitrage upper bound
+PREMIUM_TOO_LOW = 8    # premium below the discounted intrinsic value (or negative)
+PREMIUM_TOO_HIGH = 9   # premium at or above the no-arbitrage upper bound
 NO_TIME_VALUE = 10     # time value not resolvable in double precision (premium == intrinsic)
 CROSSED_QUOTE = 11     # bid > ask
 ZERO_BID = 12          # bid <= 0 (that side has no vol)
@@ -56,8 +56,8 @@ NAMES = (
     "negative_vol",
     "expired",
     "out_of_range",
-    "below_intrinsic",
-    "above_upper_bound",
+    "premium_too_low",
+    "premium_too_high",
     "no_time_value",
     "crossed_quote",
     "zero_bid",

@@ -61,9 +61,15 @@ def run(model, iv_rows, greek_loops, premium, inputs, cp, mask, iv_out, out, sta
     loop) for a mask.  Returns the count of ok rows with a non-finite Greek."""
     n = inputs[0].shape[0]
     mask = _outputs(n, mask, iv_out, out, status)
+    cp = _args.codes(n, cp)
     scratch = np.empty(n, np.int8)    # the Greeks' own statuses (the iv's take priority)
-    fused_loop(iv_rows, greek_loops(mask)[0], len(inputs) - 4, model, mask)(
-        premium, *inputs, _args.codes(n, cp), iv_out, out, status, scratch)
+    greek_rows = greek_loops(mask)[0]
+    if n <= BLOCK:                    # one block: the row loops, without a parallel launch
+        iv_rows(0, n, premium, *inputs, cp, iv_out, status)
+        greek_rows(0, n, *inputs, iv_out, cp, out, scratch)
+    else:
+        fused_loop(iv_rows, greek_rows, len(inputs) - 4, model, mask)(
+            premium, *inputs, cp, iv_out, out, status, scratch)
     return _greeks.take_nonfinite_flags(scratch)
 
 

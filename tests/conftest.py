@@ -1,6 +1,52 @@
-"""Shared test helpers: an error metric in ulps that behaves for NaN, inf and zero."""
+"""Shared test settings and helpers.
 
+* hypothesis: one settings profile for the whole suite, loaded here before any test module
+  is imported, so every property test inherits it: derandomised (the same examples every
+  run, no example database), so CI is reproducible.  ``VOLSWEEP_HYPOTHESIS_RANDOM=1``
+  loads a random profile instead, to explore new examples.
+* mpmath: every test starts at mpmath's default precision (53 bits, 15 digits) and leaves
+  it there, so a test that sets ``mp.dps`` cannot change the references of a test in
+  another file; tests that need more digits use ``mpmath.workdps``.
+* an error metric in ulps that behaves for NaN, inf and zero.
+"""
+
+import os
+
+import mpmath
 import numpy as np
+import pytest
+from hypothesis import settings
+
+HYPOTHESIS_RANDOM = bool(os.environ.get("VOLSWEEP_HYPOTHESIS_RANDOM"))
+settings.register_profile("volsweep", derandomize=True, database=None, deadline=None)
+settings.register_profile("volsweep-random", derandomize=False, deadline=None)
+settings.load_profile("volsweep-random" if HYPOTHESIS_RANDOM else "volsweep")
+
+
+def pytest_collection_modifyitems(config, items):
+    """Refuse a property test that overrides the profile's derandomisation (it would make
+    CI irreproducible), unless new examples were asked for."""
+    if HYPOTHESIS_RANDOM:
+        return
+    loose = sorted({item.nodeid.split("[")[0] for item in items
+                    if (s := getattr(getattr(item, "obj", None),
+                                     "_hypothesis_internal_use_settings", None)) is not None
+                    and not (s.derandomize and s.database is None)})
+    if loose:
+        raise pytest.UsageError("hypothesis tests not derandomised (set neither derandomize "
+                                "nor database; see tests/conftest.py): " + ", ".join(loose))
+
+
+MPMATH_DEFAULT_PREC = 53  # mpmath's own default (mp.dps = 15)
+
+
+@pytest.fixture(autouse=True)
+def _mpmath_default_precision():
+    """Each test starts and ends at mpmath's default precision (no leak between files)."""
+    mpmath.mp.prec = MPMATH_DEFAULT_PREC
+    yield
+    mpmath.mp.prec = MPMATH_DEFAULT_PREC
+
 
 EPS = 2.0 ** -52  # the ulp of 1.0 in float64: the unit of every tolerance in the tests
 

@@ -1,6 +1,7 @@
 """Table-level API: input types, column mapping, statuses per row, schema errors."""
 
 import datetime as dt
+import warnings
 
 import numpy as np
 import pyarrow as pa
@@ -11,9 +12,10 @@ from volsweep import _columns
 from volsweep.kernel import black
 from volsweep.kernel import status as _status
 
-# Hull, "Options, Futures, and Other Derivatives", worked example (from memory; value
-# re-derived with mpmath: 4.759422392871532): S=42, K=40, r=10%, sigma=20%, T=0.5.
-HULL_CALL = 4.759422392871532
+# Hull, "Options, Futures, and Other Derivatives", worked example (from memory): S=42,
+# K=40, r=10%, sigma=20%, T=0.5, no dividends.  Value from mpmath (BSM closed form at 50
+# digits on the exact double inputs): 4.7594223928715333950652..., rounded to nearest.
+HULL_CALL = 4.759422392871533
 
 
 def _row_table(**over):
@@ -36,7 +38,7 @@ def _kernel_bsm(S, K, T, r, q, vol, cp):
 def test_price_table_matches_handbook_value():
     t = volsweep.price(_row_table())
     assert t.column("status").to_pylist() == ["ok"]
-    assert t.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+    assert t.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
 
 
 def test_output_keeps_input_columns_in_order_and_appends_outputs():
@@ -163,7 +165,7 @@ def test_bad_row_gets_its_reason_and_a_null_price(over, status):
     out = volsweep.price(pa.table(cols))
     assert out.column("status").to_pylist() == ["ok", status]
     assert out.column("price")[1].as_py() is None
-    assert out.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14)
+    assert out.column("price")[0].as_py() == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
 
 
 def test_zero_vol_prices_discounted_intrinsic():
@@ -238,7 +240,7 @@ def test_expiry_years_preferred_over_timestamps_unless_expiry_is_mapped():
                       expiry_years=[0.5],
                       expiry=pa.array([as_of + dt.timedelta(days=73)], pa.timestamp("s"))))
     half = volsweep.price(t, as_of=as_of).column("price")[0].as_py()
-    assert half == pytest.approx(HULL_CALL, rel=1e-14)
+    assert half == pytest.approx(HULL_CALL, rel=1e-14, abs=0)
     mapped = volsweep.price(t, as_of=as_of, columns={"expiry": "expiry"})
     assert mapped.column("price")[0].as_py() < half  # 0.2 years, not 0.5
     with pytest.raises(ValueError, match="expiry"):
@@ -262,9 +264,9 @@ def test_implied_vol_inverts_the_handbook_price():
 
 
 @pytest.mark.parametrize("premium, status", [
-    (1.0, "below_intrinsic"),          # intrinsic is S - K e^{-rT} = 3.95
-    (-0.5, "below_intrinsic"),
-    (42.0, "above_upper_bound"),       # a call is worth less than the spot (common practice)
+    (1.0, "premium_too_low"),          # intrinsic is S - K e^{-rT} = 3.95
+    (-0.5, "premium_too_low"),
+    (42.0, "premium_too_high"),        # a call is worth less than the spot (common practice)
     (np.nan, "missing_input"),
     (np.inf, "non_finite_input"),
 ])
@@ -278,7 +280,10 @@ def test_implied_vol_status_per_row(premium, status):
 
 
 def test_implied_vol_from_bid_ask_gives_three_vols_and_statuses():
-    put = 0.8085993729000922  # the Hull example's put at 20% (put-call parity from HULL_CALL)
+    # the Hull example's put at 20%, from mpmath (BSM closed form at 50 digits on the
+    # exact double inputs, not parity from HULL_CALL): 0.80859937290009365311..., rounded
+    # to nearest
+    put = 0.8085993729000936
     t = pa.table(dict(spot=[42.0] * 4, strike=[40.0] * 4, expiry_years=[0.5] * 4,
                       rate=[0.1] * 4, is_call=[True, False, True, True],
                       bid=[HULL_CALL - 0.05, put - 0.02, 5.0, 0.0],
@@ -347,3 +352,67 @@ def test_a_mapping_to_a_missing_column_raises_naming_it():
     with pytest.raises(ValueError, match="'mid'"):
         volsweep.implied_vol(t, columns={"premium": "mid"})
     assert volsweep.implied_vol(t).num_rows == 1                     # unmapped: bid/ask
+
+
+# ------------------------------------------------- inputs the model does not read
+
+def _b76_table(**extra):
+    t = _row_table().rename_columns(["forward", "strike", "expiry_years", "rate", "vol",
+                                     "is_call"])
+    for name, values in extra.items():
+        t = t.append_column(name, pa.array(values))
+    return t
+
+
+def test_an_input_of_another_model_mapped_explicitly_is_an_error():
+    # behaviour (README, "Inputs a model does not read"): a mapped forward under bsm, or
+    # a mapped dividend yield under black76, would be silently ignored
+    with pytest.raises(ValueError, match=r"columns= gives column 'F' for 'forward'.*'bsm'"):
+        volsweep.price(_row_table(F=[42.0]), columns={"forward": "F"})
+    with pytest.raises(ValueError, match=r"'q' for 'div_yield'.*'black76'"):
+        volsweep.price(_b76_table(q=[0.02]), model="black76", columns={"div_yield": "q"})
+
+
+def test_an_unread_extra_input_present_by_name_warns_unless_mapped_to_no_column():
+    from volsweep._columns import IgnoredInputWarning
+
+    t = _b76_table(div_yield=[0.02])
+    with pytest.warns(IgnoredInputWarning, match=r"'div_yield'.*columns=\{'div_yield': None\}"):
+        volsweep.prepare("price", t.schema, model="black76")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        quiet = volsweep.price(t, model="black76", columns={"div_yield": None})
+        # another model's underlying present by name is common (chains carry both)
+        volsweep.price(_row_table(forward=[43.0]))
+    # the yield is not read: same price as without the column (same API, same values)
+    assert quiet.column("price").equals(volsweep.price(_b76_table(), model="black76")
+                                        .column("price"))
+
+
+def test_mapping_an_input_to_no_column():
+    # columns={name: None}: no column for that input, even where one has its name
+    t = _row_table(div_yield=[0.05])
+    none = volsweep.price(t, columns={"div_yield": None}).column("price")
+    assert none.equals(volsweep.price(_row_table()).column("price"))     # default 0
+    assert not none.equals(volsweep.price(t).column("price"))
+    both = _row_table(discount=[0.95])                         # rate and discount: choose
+    out = volsweep.price(both, columns={"rate": None})
+    assert out.column("price").equals(volsweep.price(_row_table(discount=[0.95]).drop_columns(
+        ["rate"])).column("price"))
+    with pytest.raises(ValueError, match="columns= maps 'strike' to no column"):
+        volsweep.price(t, columns={"strike": None})
+
+
+def test_option_errors_name_the_python_argument():
+    from volsweep._columns import OptionError
+
+    t = _row_table().drop_columns(["expiry_years"]).append_column(
+        "expiry", pa.array([dt.datetime(2031, 1, 1)]))
+    with pytest.raises(OptionError, match=r"give as_of= a time"):
+        volsweep.price(t)
+    with pytest.raises(OptionError, match=r"as_of= 'soon' is neither a column"):
+        volsweep.price(t, as_of="soon")
+    with pytest.raises(OptionError, match=r"columns= names an unknown input 'strik'") as exc:
+        volsweep.price(t, columns={"strik": "K"})
+    assert exc.value.render({"columns": "--map", "unmap": ""}).startswith(
+        "--map names an unknown input 'strik'")

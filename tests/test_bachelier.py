@@ -252,10 +252,10 @@ def test_status_sentences():
     # F - K beyond the largest double is out_of_range
     _, st = price(1.5e308, -1.5e308, 1.0, 1.0, 0.2, 1)
     assert st[0] == S.OUT_OF_RANGE
-    # implied vol: a premium below intrinsic is below_intrinsic; equal to it no_time_value;
-    # a negative premium below_intrinsic; NaN premium missing_input; no upper bound
+    # implied vol: a premium below intrinsic is premium_too_low; equal to it no_time_value;
+    # a negative premium premium_too_low; NaN premium missing_input; no upper bound
     _, st = iv([0.4, 0.5, -0.1, nan, 1e6], 1.5, 1.0, 1.0, 1.0, 1)
-    assert st.tolist() == [S.BELOW_INTRINSIC, S.NO_TIME_VALUE, S.BELOW_INTRINSIC,
+    assert st.tolist() == [S.PREMIUM_TOO_LOW, S.NO_TIME_VALUE, S.PREMIUM_TOO_LOW,
                            S.MISSING_INPUT, S.OK]
 
 

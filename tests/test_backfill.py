@@ -245,3 +245,39 @@ def test_other_options_recompute_instead_of_skipping(tmp_path):
     plan = SweepPlan.build(source.schema, units="desk", **OPTS)
     assert out.schema.metadata[SWEEP_STAMP_KEY] == plan.stamp
     assert bf.backfill(src, dst, units="desk", **OPTS).skipped == 1
+
+
+def test_a_later_partition_s_option_error_keeps_the_flag_typed(tmp_path, capsys):
+    # the error is raised on a worker and comes back through Dask (pickled): it must
+    # still name --map, not columns=
+    src = tmp_path / "src"
+    paths = _history(src, rows=300)
+    for p in paths:
+        t = pq.read_table(p)
+        name = "strike" if p == paths[3] else "K"
+        pq.write_table(t.rename_columns([name if c == "strike" else c for c in t.column_names]),
+                       p)
+    assert main(["backfill", str(src), str(tmp_path / "dst"), "--quotes", "premium",
+                 "--workers", "1", "--map", "strike=K", "--greeks", "delta"]) == 2
+    # (on a cold cache a worker may first say it compiles a kernel)
+    err = [ln for ln in capsys.readouterr().err.splitlines() if "error" in ln]
+    assert len(err) == 1, err
+    assert ("partition date=2031-03-13: --map gives column 'K' for 'strike', but the input "
+            "has no column 'K'") in err[0]
+
+
+def test_a_partition_counts_vols_above_the_bound_and_unreadable_cells(tmp_path):
+    # with r = q = 0 an at-the-money call is worth S (2 N(s/2) - 1) (published closed
+    # form): a premium of 99 on S = 100 is a vol of 5.15, above the bound of 5
+    part = tmp_path / "src" / "date=2031-03-10"
+    part.mkdir(parents=True)
+    (part / "q.csv").write_text("spot,strike,expiry_years,rate,is_call,premium\n"
+                                "100,100,1,0,true,99\n100,n.a.,1,0,true,10\n"
+                                "100,100,1,0,true,10\n")
+    (p,) = bf.find_partitions(tmp_path / "src")
+    res = bf.sweep_partition(p, str(tmp_path / "dst"), dict(OPTS, columns=None, which=[],
+                                                           model="bsm", units="raw",
+                                                           as_of=None, keep=None), 1000)
+    assert res["state"] == "written" and res["rows"] == 3
+    assert res["high_vols"] == {"iv": 1} and res["unreadable"] == {"strike": 1}
+    assert res["statuses"]["status"] == {"ok": 2, "missing_input": 1}

@@ -191,7 +191,7 @@ def test_implied_vol_from_premium(fuzz):
     codes = check_invariants(inp, out, ["iv"])
     clean = _input_sentences(raw, codes, "bsm", need_vol=False, quote="premium")
     inputs_ok = clean & ~np.isin(codes, [3, 4, 5, 6, 7])
-    assert (codes[inputs_ok & (raw["premium"] < 0)] == NAMES.index("below_intrinsic")).all()
+    assert (codes[inputs_ok & (raw["premium"] < 0)] == NAMES.index("premium_too_low")).all()
     assert (codes == 0).mean() > 0.1
 
 

@@ -84,7 +84,7 @@ def test_quote_status_sentences(model):
         ("a missing bid is missing_input on the bid and the mid only", dict(bid=np.nan),
          (S.MISSING_INPUT, S.OK, S.MISSING_INPUT)),
         ("an ask above the upper bound keeps the bid's vol", dict(ask=1e6),
-         (S.OK, S.ABOVE_UPPER_BOUND, S.ABOVE_UPPER_BOUND) if model != "bachelier"
+         (S.OK, S.PREMIUM_TOO_HIGH, S.PREMIUM_TOO_HIGH) if model != "bachelier"
          else (S.OK,) * 3),     # the normal model's premium has no upper bound
     ]
     for j, (sentence, over, want) in enumerate(cases):

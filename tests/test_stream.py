@@ -159,7 +159,7 @@ def test_csv_with_call_put_words_and_remapped_names(tmp_path):
     assert got.column_names[:6] == ["S", "K", "T", "r", "type", "mid"]
     iv = got.column("iv").to_pylist()
     assert abs(iv[0] - 0.2) < 1e-4 and abs(iv[1] - 0.2) < 1e-4 and iv[2] is None
-    assert got.column("status").to_pylist() == ["ok", "ok", "below_intrinsic"]
+    assert got.column("status").to_pylist() == ["ok", "ok", "premium_too_low"]
 
 
 def test_empty_input_gives_empty_output_with_the_output_schema(snap, tmp_path):
@@ -257,8 +257,37 @@ def test_error_bad_csv_row_past_the_first_block(tmp_path, capsys):
     csv.write_text("spot,strike,expiry_years,rate,is_call,premium\n" + rows + "100,oops\n")
     out = tmp_path / "o.parquet"
     assert main(["sweep", str(csv), "-o", str(out), "--batch-rows", "100"]) == 2
-    assert "cannot read" in _one_error_line(capsys)
+    err = _one_error_line(capsys)
+    assert f"cannot read {csv}: line 60002: Expected 6 columns, got 2" in err
     assert not out.exists() and os.listdir(tmp_path) == ["q.csv"]
+
+
+@pytest.mark.parametrize("where", [5, 60000])        # in the first block, and far past it
+def test_csv_cells_that_are_not_numbers_are_missing_data(tmp_path, capsys, where):
+    # behaviour: data problems never raise.  Source of truth: the same file with those
+    # cells empty (a null, as pyarrow.csv reads an empty cell), through the same command
+    rows = ["100,100,1,0.05,true,10.45"] * 60010
+    bad, blank = rows.copy(), rows.copy()
+    bad[where], blank[where] = "100,n.a.,1,0.05,true,10.45", "100,,1,0.05,true,10.45"
+    bad[where + 3], blank[where + 3] = "100,100,1,-,true,10.45", "100,100,1,,true,10.45"
+    past = where > 1000     # a word in is_call's first block makes it a column of words
+    if past:
+        bad[where + 4], blank[where + 4] = "100,100,1,0.05,maybe,10.45", "100,100,1,0.05,,10.45"
+    head = "spot,strike,expiry_years,rate,is_call,premium\n"
+    for name, lines in (("bad", bad), ("blank", blank)):
+        (tmp_path / f"{name}.csv").write_text(head + "\n".join(lines) + "\n")
+        assert main(["sweep", str(tmp_path / f"{name}.csv"), "-o",
+                     str(tmp_path / f"{name}.parquet"), "--batch-rows", "7000"]) == 0
+    err = capsys.readouterr().err
+    assert "2 cells not numbers: read as missing ('strike' 1, 'rate' 1)" in err
+    assert ("1 cell not true/false: read as missing ('is_call' 1)" in err) == past
+    got, want = pq.read_table(tmp_path / "bad.parquet"), pq.read_table(tmp_path / "blank.parquet")
+    assert got.num_rows == 60010
+    assert_bits_equal(got, want)
+    status = got.column("status").to_pylist()
+    missing = [where, where + 3] + ([where + 4] if past else [])
+    assert [status[i] for i in missing] == ["missing_input"] * len(missing)
+    assert status.count("ok") == 60010 - len(missing)
 
 
 def test_error_missing_column(snap, tmp_path, capsys):
