@@ -7,17 +7,19 @@ Logical inputs and the default column names (any of them can be remapped with
 ``columns={"strike": "K", ...}``):
 
 ============== ==================================================================
-``spot``       underlying spot price (model ``bsm``)
-``forward``    forward / futures price (model ``black76``)
+``spot``       underlying spot price (models on spot)
+``forward``    forward / futures price (models on a forward)
 ``strike``     strike
 ``expiry_years`` time to expiry in years; or ``expiry`` (timestamp/date) plus ``as_of``
 ``rate``       continuously compounded rate; or ``discount`` (discount factor)
-``div_yield``  continuous dividend yield / borrow (``bsm``; 0 if absent)
-(the models' underlyings and extra inputs come from kernel/registry.py)
+``div_yield``  continuous dividend yield / borrow (an extra input; 0 if absent)
+``shift``      displacement of shifted Black-76 (an extra input; 0 if absent)
 ``is_call``    bool, or strings call/put/C/P (any case)
 ``vol``        volatility (pricing and Greeks)
 ``premium``    price to invert; or ``bid`` and ``ask``
 ============== ==================================================================
+
+The models' underlyings and extra inputs come from kernel/registry.py.
 """
 
 from __future__ import annotations

@@ -294,8 +294,8 @@ def price(data, model: str = DEFAULT_MODEL, columns: dict | None = None, *,
           as_of=None) -> pa.Table:
     """Model prices of European options at the volatility in the ``vol`` column.
 
-    ``model``: a name of the registry (``volsweep.MODELS``; ``"bsm"`` on ``spot`` with a
-    continuous ``div_yield``, ``"black76"`` on ``forward``).  Adds ``price`` (null where the
+    ``model``: a name of the registry (``volsweep.MODELS``: each model's underlying column,
+    ``spot`` or ``forward``, and its optional extra inputs).  Adds ``price`` (null where the
     row has no price) and ``status``.  ``columns`` maps our input names to yours, e.g.
     ``{"strike": "K"}``; ``as_of`` is the valuation time when expiries are timestamps.
     """
@@ -322,8 +322,8 @@ def greeks(data, model: str = DEFAULT_MODEL, which=None, units: str = "raw",
     ``which``: a Greek name or a list of them (None: all the model has; see
     ``GREEK_NAMES``).  ``units="raw"``: per 1.00 of vol, rate and yield, theta per year;
     ``units="desk"``: per vol point, per 1%, per calendar day.  Adds one column per Greek and
-    ``status``.  Derivatives are against the model's underlying (spot for ``bsm``, the
-    forward for ``black76``).
+    ``status``.  Derivatives are against the model's underlying (its ``underlying`` in
+    ``volsweep.MODELS``: spot or forward).
     """
     return _run("greeks", data, model=model, which=which, units=units, columns=columns,
                 as_of=as_of)
