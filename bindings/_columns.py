@@ -219,7 +219,7 @@ class ColumnPlan:
         for logical, col in self.source.items():
             raw = schema.field(col).type
             self.index[logical] = schema.get_field_index(col)   # unique: dupes refused
-            if raw == pa.float64():
+            if raw == (pa.bool_() if logical == "is_call" else pa.float64()):
                 self.plain.add(logical)     # read without decoding or casting
             t = _value_type(raw)
             if pa.types.is_null(t):
@@ -269,7 +269,11 @@ class ColumnPlan:
         return np.full(batch.num_rows, extra.default)
 
     def call_put(self, batch) -> np.ndarray:
-        return _to_call_put(batch.column(self.source["is_call"]))
+        col = batch.column(self.index["is_call"])
+        if "is_call" in self.plain and not col.null_count:
+            flags = col.to_numpy(zero_copy_only=False).view(np.int8)   # 1 call, 0 put
+            return flags + flags - np.int8(1)
+        return _to_call_put(col)
 
 
 def _check_model_inputs(entry, columns: dict, names) -> None:
