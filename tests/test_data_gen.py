@@ -317,6 +317,9 @@ def test_bad_fraction_is_configurable(frac):
 
 def test_expected_status_covers_every_flag():
     assert set(quotes.EXPECTED_STATUS) == set(data_gen.FLAGS)
+    # every expected status is a word the kernel writes (kernel/status.py)
+    from volsweep.kernel.status import NAMES
+    assert set(quotes.EXPECTED_STATUS.values()) <= set(NAMES)
 
 
 # ---------------------------------------------------------------- time and files
