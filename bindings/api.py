@@ -14,58 +14,20 @@ pays for it once; the streaming driver calls it once per run.
 
 from __future__ import annotations
 
-import contextlib
 import threading
 
-import numba
 import numpy as np
 import pyarrow as pa
 
-from volsweep.kernel import black as _black
 from volsweep.kernel import greeks as _greeks
 from volsweep.kernel import registry as _registry
-from volsweep.kernel._jit import BLOCK as _BLOCK
-
 from volsweep.kernel.registry import DEFAULT_MODEL
+
 from ._columns import ColumnPlan
-from .loader import load_kernel, served_mask
 from ._input import as_batches
+from .loader import launch_guard, load_kernel, served_mask
 from ._output import (append, check_no_clash, float_column, new_array, output_schema,
                       status_column, validity_buffer)
-
-
-_LAUNCH_LOCK = threading.Lock()
-_workqueue = None  # is numba's threading layer "workqueue"?  Known after the first launch
-
-
-def _probe_threading_layer() -> bool:
-    """Start numba's threading layer with the smallest parallel kernel (discount factors:
-    quick to load from the cache, and most calls need it anyway) and say whether it is
-    ``workqueue``, which is not thread-safe and aborts the process on a nested parallel
-    launch."""
-    global _workqueue
-    with _LAUNCH_LOCK:
-        if _workqueue is None:
-            # more than one block: one block or less runs the row loop without a launch
-            n = _BLOCK + 1
-            _black.discount_factors(np.zeros(n), np.ones(n), np.empty(n))
-            _workqueue = numba.threading_layer() == "workqueue"
-    return _workqueue
-
-
-@contextlib.contextmanager
-def _kernel_launch():
-    """Serialise kernel launches when numba's threading layer is not thread-safe.
-
-    ``omp`` and ``tbb`` take parallel launches from several Python threads at once;
-    ``workqueue`` aborts the process on concurrent launches, so under it one call at a
-    time runs the kernels.
-    """
-    if _workqueue is False or not _probe_threading_layer():
-        yield
-        return
-    with _LAUNCH_LOCK:
-        yield
 
 
 def _ok_column(values: np.ndarray, ok: np.ndarray) -> pa.Array:
@@ -86,7 +48,6 @@ def _greek_columns(names, g, ok, n_nonfinite) -> dict:
         return {name: _ok_column(g[j], ok) for j, name in enumerate(names)}
     validity = validity_buffer(ok)
     return {name: float_column(g[j], ok, validity) for j, name in enumerate(names)}
-
 
 
 _QUOTE_OUTPUTS = ("iv_bid", "iv_ask", "iv", "iv_spread_uncertainty", "status_bid",
@@ -165,11 +126,8 @@ class Prepared:
         if not batch.schema.equals(self.in_schema):
             raise ValueError(f"this {self.operation} was prepared for another schema: "
                              "call prepare() with this batch's schema")
-        if _workqueue is False:          # thread-safe threading layer: no lock (the usual)
+        with launch_guard():
             cols = self._compute(batch)
-        else:
-            with _kernel_launch():
-                cols = self._compute(batch)
         return append(batch, self.out_schema, cols)
 
     # ------------------------------------------------------------ per operation
@@ -249,6 +207,7 @@ class Prepared:
 
 _PREPARED: list = []          # recent (options key, schema, Prepared), newest last
 _PREPARED_MAX = 64
+_PREPARED_LOCK = threading.Lock()
 
 
 def _freeze(value):
@@ -278,7 +237,7 @@ def prepare(operation: str, schema: pa.Schema, *, model: str = DEFAULT_MODEL, wh
                 return prep
     prep = Prepared(operation, schema, model, which, units, columns, as_of)
     if key is not None:
-        with _LAUNCH_LOCK:
+        with _PREPARED_LOCK:
             _PREPARED.append((key, schema, prep))
             del _PREPARED[:-_PREPARED_MAX]
     return prep

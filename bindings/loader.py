@@ -15,12 +15,15 @@ compile (once per machine), so that a compile is never mistaken for a slow run.
 
 from __future__ import annotations
 
+import contextlib
 import sys
 import threading
 import time
 
+import numba
 import numpy as np
 
+from volsweep.kernel import black as _black
 from volsweep.kernel import greeks as _greeks
 from volsweep.kernel import registry as _registry
 from volsweep.kernel._jit import BLOCK
@@ -28,6 +31,34 @@ from volsweep.kernel._jit import BLOCK
 _VEGA = 1 << _greeks.GREEK_NAMES.index("vega")
 _LOADED: set = set()
 _LOCK = threading.Lock()
+_LAUNCH_LOCK = threading.Lock()
+_UNGUARDED = contextlib.nullcontext()
+_workqueue = None  # is numba's threading layer "workqueue"?  Known after the first launch
+
+
+def _probe_threading_layer() -> bool:
+    """Start numba's threading layer with the smallest parallel kernel (discount factors:
+    quick to load from the cache, and most calls need it anyway) and say whether it is
+    ``workqueue``, which is not thread-safe and aborts the process on a nested parallel
+    launch."""
+    global _workqueue
+    with _LAUNCH_LOCK:
+        if _workqueue is None:
+            # more than one block: one block or less runs the row loop without a launch
+            n = BLOCK + 1
+            _black.discount_factors(np.zeros(n), np.ones(n), np.empty(n))
+            _workqueue = numba.threading_layer() == "workqueue"
+    return _workqueue
+
+
+def launch_guard():
+    """The context every kernel launch of the bindings runs in: nothing under ``omp`` or
+    ``tbb``, which take parallel launches from several Python threads at once; under
+    ``workqueue``, which aborts the process on concurrent launches, a lock, so that one
+    call at a time runs the kernels (loads and warm-ups included)."""
+    if _workqueue is False or not _probe_threading_layer():
+        return _UNGUARDED
+    return _LAUNCH_LOCK
 _NOTICE_AFTER = 2.0        # seconds: a load that takes longer is a compile (loading
 #                            from the disk cache takes milliseconds, ~1 s on a loaded machine)
 
@@ -90,7 +121,8 @@ def load_kernel(model: str, op: str, mask: int = 0) -> float:
 
         def work():
             try:
-                _touch(model, op, mask)
+                with launch_guard():
+                    _touch(model, op, mask)
             except BaseException as exc:       # re-raised in the caller's thread
                 failed.append(exc)
 

@@ -45,16 +45,12 @@ def codes(n: int, cp) -> np.ndarray:
     Any other value is treated as missing (0), so it gets status missing_input.
     """
     cp = np.asarray(cp)
-    # the usual case in one reduction: int8 codes viewed as uint8 are 255, 0, 1, and
-    # adding 1 (wrapping) maps exactly the valid ones into 0..2
-    if (cp.dtype == np.int8 and cp.shape == (n,) and cp.flags.c_contiguous
-            and (not cp.size or (cp.view(np.uint8) + np.uint8(1)).max() <= 2)):
-        return _readonly(cp)
     if not np.issubdtype(cp.dtype, np.integer):
         raise TypeError(f"cp must be integer codes (+1 call, -1 put, 0 missing), "
                         f"got dtype {cp.dtype}")
-    # otherwise: two reductions, no temporaries (cheaper than all() over a mask)
-    if cp.dtype != np.int8 or (cp.size and (cp.min() < -1 or cp.max() > 1)):
+    # one reduction: int8 codes viewed as uint8 are 255, 0, 1, and adding 1 (wrapping)
+    # maps exactly the valid ones into 0..2; anything else is made 0 (missing)
+    if cp.dtype != np.int8 or (cp.size and (cp.view(np.uint8) + np.uint8(1)).max() > 2):
         cp = np.where((cp == 1) | (cp == -1), cp, 0).astype(np.int8)
     cp = np.ascontiguousarray(cp)
     if cp.shape != (n,):

@@ -260,7 +260,7 @@ def _greeks_spot(spot, K, T, D, q, Dq, F, vol, cp):
 def greeks_spot(spot, K, T, D, q, vol, cp):
     """All BSM Greeks (tuple in ``GREEK_NAMES`` order) for valid inputs (see above).
 
-    The forward is F = spot e^{-qT} / D, as in ``black.bsm_forward``.
+    The forward is F = spot e^{-qT} / D, as in ``black.bsm_inputs``.
     """
     Dq = exp(-q * T)
     return _greeks_spot(spot, K, T, D, q, Dq, spot * Dq / D, vol, cp)
