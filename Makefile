@@ -6,7 +6,8 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-# Compiled kernels are cached on disk, keyed on a hash of the kernel sources (kernel/_cache.py),
+# Compiled kernels are cached on disk, keyed per kernel module on a hash of its sources and imports
+# (kernel/_cache.py),
 # in one folder shared by every checkout on this machine: a fresh clone with the same kernel
 # loads them instead of compiling again.  Override NUMBA_CACHE_DIR to move it.
 export NUMBA_CACHE_DIR ?= $(HOME)/.cache/volsweep/numba

@@ -29,9 +29,9 @@ Why these flags:
   because ``contract`` does not guarantee fusion.
 * ``cache=True``: compiled code is kept in ``__pycache__`` next to the source, so a new
   process (a Dask worker, the CLI) loads it instead of recompiling.  The cache entries are
-  stamped with a hash of every kernel source file (``_cache.py``), because the loops
-  inline code from other modules and numba alone would only notice edits to the loop's
-  own file.
+  stamped with a hash of the module's sources and of every kernel module it imports
+  (``_cache.py``), because the loops inline code from other modules and numba alone would
+  only notice edits to the loop's own file.
 """
 
 import os

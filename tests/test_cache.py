@@ -1,16 +1,38 @@
-"""The kernel's on-disk cache is keyed on every kernel source file."""
+"""The kernel's on-disk cache is keyed on each kernel module's import closure."""
 
 import shutil
 
 from volsweep.kernel import _cache, black
 
 
-def test_kernel_loops_use_the_package_wide_cache_stamp():
+def test_kernel_loops_use_their_module_closure_stamp():
     black._black76_price_rows.enable_caching()
     locator = black._black76_price_rows._cache._impl.locator
     assert isinstance(locator, (_cache.KernelInTreeLocator, _cache.KernelUserWideLocator,
                                 _cache.KernelUserProvidedLocator))
-    assert locator.get_source_stamp() == _cache.kernel_source_hash()
+    assert locator.get_source_stamp() == _cache.module_stamp(black.__file__)
+
+
+def test_the_closure_follows_relative_imports_transitively():
+    # black.py imports special (which imports _intrinsics and _jit), status, _args, _jit;
+    # read here from the sources themselves
+    closure = _cache.module_closure(_cache._KERNEL_DIR, "black")
+    assert {"black", "special", "_intrinsics", "_jit", "_cache", "status", "_args"} <= set(closure)
+    assert "greeks" not in closure and "registry" not in closure
+    assert "black" in _cache.module_closure(_cache._KERNEL_DIR, "greeks")
+
+
+def test_an_edit_changes_the_stamp_of_every_importer_and_no_other(tmp_path):
+    copy = tmp_path / "kernel"
+    shutil.copytree(_cache._KERNEL_DIR, copy, ignore=shutil.ignore_patterns("__pycache__"))
+    mods = ("special", "black", "greeks", "status")
+    before = {m: _cache.hash_closure(str(copy), m) for m in mods}
+    (copy / "black.py").write_text((copy / "black.py").read_text() + "\n# edit\n")
+    after = {m: _cache.hash_closure(str(copy), m) for m in mods}
+    assert after["black"] != before["black"] and after["greeks"] != before["greeks"]
+    assert after["special"] == before["special"] and after["status"] == before["status"]
+    (copy / "newmodule.py").write_text("from .special import exp\n")
+    assert {m: _cache.hash_closure(str(copy), m) for m in mods} == after
 
 
 def test_editing_any_kernel_file_changes_the_stamp(tmp_path):
@@ -32,7 +54,7 @@ def test_each_kernel_version_caches_in_its_own_folder(monkeypatch, tmp_path):
     monkeypatch.setattr(caching.config, "CACHE_DIR", str(tmp_path))
     loc = _cache.KernelUserProvidedLocator(black._black76_price_rows.py_func, black.__file__)
     assert loc.get_cache_path() == str(tmp_path / "volsweep-kernel"
-                                       / _cache.kernel_source_hash().hex()[:16])
+                                       / _cache.module_stamp(black.__file__).hex()[:16])
 
 
 _INTERLEAVE_PROBE = r"""
