@@ -337,8 +337,8 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
     if pricer is None:
         raise ValueError(f"scenarios do not know model {model!r} yet (no scenario pricer "
                          "in kernel/risk.py)")
-    ds = _shocks(spot_shocks, "spot_shocks")
-    dv = _shocks(vol_shocks, "vol_shocks")
+    ds = _shocks(DEFAULT_SPOT_SHOCKS if spot_shocks is None else spot_shocks, "spot_shocks")
+    dv = _shocks(DEFAULT_VOL_SHOCKS if vol_shocks is None else vol_shocks, "vol_shocks")
     if entry.vol == "lognormal" and np.any(ds <= -1.0):
         raise ValueError(f"spot_shocks= must be > -1 (-100%) under model {model!r}, whose "
                          f"underlying is positive; got {min(ds)!r}")
@@ -454,7 +454,7 @@ def load_kernel_scenarios(model: str) -> None:
 
 
 def scenarios(data, model: str = DEFAULT_MODEL, by=("underlying",),
-              spot_shocks=DEFAULT_SPOT_SHOCKS, vol_shocks=DEFAULT_VOL_SHOCKS, days=0.0,
+              spot_shocks=None, vol_shocks=None, days=0.0,
               columns: dict | None = None, *, as_of=None, progress=None) -> pa.Table:
     """P&L of every group under a grid of spot and vol shocks, by full revaluation.
 
@@ -463,9 +463,11 @@ def scenarios(data, model: str = DEFAULT_MODEL, by=("underlying",),
     ``vol_shock``, ``pnl`` = sum of quantity x multiplier x (price at the shocked inputs
     - price at the base inputs), ``rows``, ``rows_left_out`` (bad status: nothing
     contributed) and ``rows_shock_invalid`` (no value at the shocked inputs).
-    ``spot_shocks``: relative (0.05 = +5%) on the model's underlying input;
-    ``vol_shocks``: absolute (0.01 = one vol point; a normal vol's units under
-    bachelier); ``days``: calendar days the valuation moves forward (>= 0).
+    ``spot_shocks``: relative (0.05 = +5%) on the model's underlying input (None:
+    -10% to +10% by 1%); ``vol_shocks``: absolute (0.01 = one vol point; a normal vol's
+    units under bachelier; None: -0.03 to +0.03 by 0.01); ``days``: calendar days the
+    valuation moves forward (>= 0).  ``progress``: None, or an object whose
+    ``update(n)`` is told of the rows revalued (e.g. a tqdm bar).
     """
     schema, batches = as_batches(data)
     return run_scenarios(schema, batches, model=model, by=by, spot_shocks=spot_shocks,

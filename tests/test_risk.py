@@ -416,3 +416,81 @@ def test_empty_input_gives_an_empty_grid_with_the_schema():
                                 "rows_left_out", "rows_shock_invalid"]
     tot = volsweep.position_greeks(book, which="delta")
     assert tot.num_rows == 0 and "cash_delta" in tot.column_names
+
+
+# ---------------------------------------------------------------- command line
+
+def _cli(*argv):
+    from volsweep.cli import main
+    return main(list(argv))
+
+
+def test_cli_writes_the_grid_of_the_python_function(tmp_path, capsys):
+    import pyarrow.csv as pcsv
+    import pyarrow.parquet as pq
+
+    book = _bad_rows(_book("black76", n=400, seed=6))
+    src = tmp_path / "book.csv"
+    pcsv.write_csv(book.rename_columns(["qty" if c == "quantity" else c
+                                        for c in book.column_names]), src)
+    out = tmp_path / "grid.parquet"
+    rc = _cli("risk", str(src), "-o", str(out), "--model", "black76", "--map", "quantity=qty",
+              "--spot-shocks=-0.1:0.1:0.05", "--vol-shocks=-0.01,0,0.01", "--days", "1",
+              "--by", "underlying,is_call")
+    assert rc == 0
+    got = pq.read_table(out)
+    want = volsweep.scenarios(book, model="black76", by=("underlying", "is_call"),
+                              spot_shocks=[-0.1, -0.05, 0.0, 0.05, 0.1],
+                              vol_shocks=[-0.01, 0.0, 0.01], days=1)
+    assert got.column_names == want.column_names
+    for c in ("spot_shock", "vol_shock", "pnl", "rows", "rows_left_out",
+              "rows_shock_invalid"):
+        assert got[c].to_pylist() == want[c].to_pylist(), c
+    err = capsys.readouterr().err
+    assert "missing_input" in err and "non_finite_input" in err
+
+
+def test_cli_names_the_missing_quantity_with_its_flag(tmp_path, capsys):
+    import pyarrow.parquet as pq
+
+    src = tmp_path / "book.parquet"
+    pq.write_table(_book("bsm", n=5).drop_columns(["quantity"]), src)
+    assert _cli("risk", str(src), "-o", str(tmp_path / "g.parquet")) == 2
+    err = capsys.readouterr().err
+    assert "quantity" in err and "--map" in err and "columns=" not in err
+    assert not (tmp_path / "g.parquet").exists()
+
+
+def test_cli_heat_maps_one_per_group(tmp_path):
+    pytest.importorskip("matplotlib")
+    import pyarrow.parquet as pq
+
+    src = tmp_path / "book.parquet"
+    pq.write_table(_book("bsm", n=300), src)
+    rc = _cli("risk", str(src), "-o", str(tmp_path / "g.arrow"), "--heatmap",
+              str(tmp_path / "maps"), "--spot-shocks=-0.05,0,0.05", "--vol-shocks=0,0.01")
+    assert rc == 0
+    names = sorted(p.name for p in (tmp_path / "maps").iterdir())
+    assert names == ["risk_KELP.png", "risk_ORRA.png", "risk_VANTO.png"]
+    for n in names:
+        assert (tmp_path / "maps" / n).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_heat_map_without_matplotlib_says_how_to_install(tmp_path, capsys, monkeypatch):
+    import builtins
+
+    import pyarrow.parquet as pq
+
+    real = builtins.__import__
+
+    def no_matplotlib(name, *a, **k):
+        if name.split(".")[0] == "matplotlib":
+            raise ImportError(name)
+        return real(name, *a, **k)
+
+    monkeypatch.setattr(builtins, "__import__", no_matplotlib)
+    src = tmp_path / "book.parquet"
+    pq.write_table(_book("bsm", n=5), src)
+    assert _cli("risk", str(src), "-o", str(tmp_path / "g.parquet"), "--heatmap",
+                str(tmp_path / "maps")) == 2
+    assert "volsweep[plot]" in capsys.readouterr().err
