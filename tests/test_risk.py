@@ -494,3 +494,28 @@ def test_heat_map_without_matplotlib_says_how_to_install(tmp_path, capsys, monke
     assert _cli("risk", str(src), "-o", str(tmp_path / "g.parquet"), "--heatmap",
                 str(tmp_path / "maps")) == 2
     assert "volsweep[plot]" in capsys.readouterr().err
+
+
+def test_null_keys_are_a_group_and_progress_is_told_of_every_row():
+    book = _book("bsm", n=5000, seed=12)
+    und = book["underlying"].to_pylist()
+    und[7] = None
+    und[4000] = None
+    book = book.set_column(0, "underlying", pa.array(und))
+    seen = []
+
+    class Count:
+        def update(self, n):
+            seen.append(n)
+
+    out = volsweep.scenarios(book, spot_shocks=[0.01], vol_shocks=[0.0], progress=Count())
+    assert sum(seen) == book.num_rows
+    keys = out["underlying"].to_pylist()
+    assert keys == list(dict.fromkeys(und)) and None in keys
+    assert out["rows"].to_pylist()[keys.index(None)] == 2
+    tot = volsweep.position_greeks(book, by=(), which=["delta"])
+    assert tot.column_names == ["rows", "rows_left_out", "position_delta", "cash_delta"]
+    assert tot["rows"].to_pylist() == [5000]
+    two = volsweep.position_greeks(book, by=["underlying", "is_call"], which="vega")
+    assert sum(two["rows"].to_pylist()) == 5000
+    assert two.num_rows == len(set(zip(und, book["is_call"].to_pylist())))
