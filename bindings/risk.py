@@ -416,7 +416,10 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
     rows_r = np.repeat(rows, nsc)
     left_r = np.repeat(left_out, nsc)
     bad_r = bad.ravel()
-    out["pnl"] = pa.array(pnl.ravel(), pa.float64(), mask=(rows_r - left_r - bad_r) <= 0)
+    flat = pnl.ravel()
+    # null where no row contributed, or where the sum overflowed (not a finite double)
+    out["pnl"] = pa.array(flat, pa.float64(),
+                          mask=((rows_r - left_r - bad_r) <= 0) | ~np.isfinite(flat))
     out["rows"] = pa.array(rows_r, pa.int64())
     out["rows_left_out"] = pa.array(left_r, pa.int64())
     out["rows_shock_invalid"] = pa.array(bad_r, pa.int64())

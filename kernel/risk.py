@@ -30,8 +30,9 @@ A row enters the grid only when ``ok`` (its status at the base inputs is ok, qua
 multiplier finite): the caller decides that with the model's own price kernel, so a row
 has the same status here as in ``volsweep.price``.  Rows that are not ok contribute 0 to
 every scenario (the caller counts them).  An ok row whose *shocked* inputs have no value
-(a vol shocked below zero, a shifted forward pushed to zero or below, a price that is not
-a finite double) contributes 0 to that scenario and is counted in ``bad[g, scenario]``.
+(a vol shocked below zero, a shifted forward pushed to zero or below, a price or a
+contribution that is not a finite double) contributes 0 to that scenario and is counted
+in ``bad[g, scenario]``.
 
 Time shift
 ----------
@@ -122,7 +123,8 @@ PRICERS = {
 # Revalue rows [a, e) at underlying U (1 + ds) and vol + dv into out:
 #   rel == 0: out[i] = V (the base value itself),
 #   rel != 0: out[i] = w[i] (V - base[i]),
-# 0 for rows that are not ok, NaN for ok rows whose shocked inputs have no value.
+# 0 for rows that are not ok, NaN for ok rows whose shocked inputs have no value (or whose
+# contribution w (V - base) is not a finite double).
 # Copied per model with VALUE and PAYOFF as frozen globals (_jit.specialise).
 def _revalue_template(a, e, U, K, T, D, X, vol, cp, ok, w, base, ds, dv, rel, out):
     up = 1.0 + ds
@@ -137,6 +139,7 @@ def _revalue_template(a, e, U, K, T, D, X, vol, cp, ok, w, base, ds, dv, rel, ou
         p = p if live else PAYOFF(u, K[i], X[i], c)  # noqa: F821
         p = p if (v >= 0.0 and abs(p) < INF) else NAN
         r = w[i] * (p - base[i]) if rel != 0.0 else p
+        r = r if abs(r) < INF else NAN            # an overflowing contribution: no value
         out[i] = r if ok[i] != 0 else 0.0
 
 

@@ -519,3 +519,57 @@ def test_null_keys_are_a_group_and_progress_is_told_of_every_row():
     two = volsweep.position_greeks(book, by=["underlying", "is_call"], which="vega")
     assert sum(two["rows"].to_pylist()) == 5000
     assert two.num_rows == len(set(zip(und, book["is_call"].to_pylist())))
+
+
+# ---------------------------------------------------------------- hostile input
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+_SPECIAL = [np.nan, np.inf, -np.inf, 0.0, -0.0, 5e-324, 1e-300, 1e300, -1.0]
+
+
+@settings(max_examples=80, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data())
+def test_hostile_books_keep_every_row_counted(data):
+    # every row is in exactly one group; pnl is finite or null; nothing raises
+    model = data.draw(st.sampled_from(["bsm", "black76", "bachelier"]))
+    n = data.draw(st.integers(0, 30))
+    book = _book(model, n=max(n, 1), seed=data.draw(st.integers(0, 1000))).slice(0, n)
+    d = book.to_pydict()
+    numeric = [c for c in d if c not in ("underlying", "id", "is_call")]
+    for _ in range(data.draw(st.integers(0, 12)) if n else 0):
+        col = data.draw(st.sampled_from(numeric))
+        d[col][data.draw(st.integers(0, n - 1))] = data.draw(
+            st.one_of(st.sampled_from(_SPECIAL), st.none(),
+                      st.floats(allow_nan=True, allow_infinity=True)))
+    book = pa.table(d, schema=book.schema)
+    before = book.to_pydict()
+    dv = data.draw(st.lists(st.floats(-1.0, 1.0), min_size=1, max_size=3))
+    out = volsweep.scenarios(book, model=model, spot_shocks=[-0.5, 0.0, 0.5], vol_shocks=dv,
+                             days=data.draw(st.sampled_from([0.0, 1.0, 400.0])))
+    assert book.to_pydict().keys() == before.keys()
+    groups = list(dict.fromkeys(d["underlying"]))
+    assert out.num_rows == len(groups) * 3 * len(dv)
+    for r in out.to_pylist():
+        assert 0 <= r["rows_left_out"] + r["rows_shock_invalid"] <= r["rows"]
+        assert r["pnl"] is None or math.isfinite(r["pnl"])
+        if r["rows_left_out"] + r["rows_shock_invalid"] == r["rows"]:
+            assert r["pnl"] is None
+    assert sum(out["rows"].to_pylist()[::3 * len(dv)]) == n
+    tot = volsweep.position_greeks(book, model=model, which=["delta", "gamma"])
+    assert sum(tot["rows"].to_pylist()) == n
+    for r in tot.to_pylist():
+        for c in ("position_delta", "cash_gamma"):
+            assert r[c] is None or math.isfinite(r[c])
+
+
+def test_an_overflowing_contribution_is_counted_not_summed():
+    book = pa.table({"underlying": ["KELP"] * 2, "spot": [100.0] * 2,
+                     "strike": [100.0, 100.0], "expiry_years": [0.5] * 2,
+                     "rate": [0.02] * 2, "is_call": [True, True], "vol": [0.2, 0.2],
+                     "quantity": [1e305, 1.0], "multiplier": [100.0, 1.0]})
+    out = volsweep.scenarios(book, spot_shocks=[0.5], vol_shocks=[0.0]).to_pylist()
+    assert out[0]["rows_shock_invalid"] == 1
+    alone = volsweep.scenarios(book.slice(1), spot_shocks=[0.5], vol_shocks=[0.0])
+    assert out[0]["pnl"] == alone["pnl"].to_pylist()[0]
