@@ -23,6 +23,9 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call; with
   ``--before CHECKOUT``, the previous code version and this one taking turns in two child
   processes, ``benchmarks.compare``);
+* scenario grids (``volsweep.scenarios``, 21 x 7 shocks on up to 1M positions) against
+  one ``volsweep.price`` call on the same rows: revaluations/s over rows/s
+  (``benchmarks/bench_risk.py``);
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -46,7 +49,7 @@ import time
 import numba
 import numpy as np
 
-from benchmarks import _cases, bench_greeks, bench_implied, bench_price, compare
+from benchmarks import _cases, bench_greeks, bench_implied, bench_price, bench_risk, compare
 from benchmarks._timing import median_times
 from volsweep.kernel import registry
 
@@ -364,6 +367,7 @@ def main(argv=None, rows: int | None = None) -> int:
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
     small_batch_section(args.repeats, before=args.before)
+    bench_risk.risk_section(min(args.rows, 1_000_000), max(3, args.repeats // 2))
     latency_section()
     if args.asm:
         asm_section()

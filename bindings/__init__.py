@@ -17,6 +17,7 @@ _EXPORTS = {
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
     "OptionError": "_columns", "IgnoredInputWarning": "_columns",
+    "position_greeks": "risk", "scenarios": "risk",
 }
 
 __all__ = sorted(_EXPORTS)
