@@ -23,6 +23,8 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call; with
   ``--before CHECKOUT``, the previous code version and this one taking turns in two child
   processes, ``benchmarks.compare``);
+* the chain operations (``implied_forwards``, ``model_free_variance``) on 1.92M rows
+  against one ``implied_vol`` pass on the same rows (``benchmarks.bench_chains``);
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -364,6 +366,8 @@ def main(argv=None, rows: int | None = None) -> int:
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
     small_batch_section(args.repeats, before=args.before)
+    from benchmarks.bench_chains import chains_section
+    chains_section(repeats=args.repeats)     # group operations against one implied-vol pass
     latency_section()
     if args.asm:
         asm_section()

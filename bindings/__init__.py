@@ -17,6 +17,8 @@ _EXPORTS = {
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
     "OptionError": "_columns", "IgnoredInputWarning": "_columns",
+    "implied_forwards": "chains", "model_free_variance": "chains",
+    "constant_maturity_variance": "chains",
 }
 
 __all__ = sorted(_EXPORTS)

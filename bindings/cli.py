@@ -6,6 +6,8 @@ Commands:
   price IN -o OUT          price every row of a file (needs a vol column)
   sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
   backfill SRC DST         sweep every partition of a dataset on Dask, resumably
+  forwards IN -o OUT       implied forward and discount per expiry (put-call parity)
+  variance IN -o OUT       model-free implied variance per expiry, or at fixed horizons
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -417,6 +419,9 @@ def build_parser() -> argparse.ArgumentParser:
                     help="rows per batch (default: %(default)s)")
     _sweep_args(bf)
     bf.set_defaults(func=cmd_backfill)
+
+    from .cli_chains import add_parser as _add_chain_commands
+    _add_chain_commands(sub)                  # forwards, variance
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)

@@ -146,7 +146,9 @@ def _public_functions() -> dict:
 def test_public_functions_are_the_expected_ones():
     # guards the checks below against an empty or shrunken list
     assert set(_public_functions()) == {"price", "implied_vol", "greeks", "sweep",
-                                        "prepare", "warmup", "backfill"}
+                                        "prepare", "warmup", "backfill",
+                                        "implied_forwards", "model_free_variance",
+                                        "constant_maturity_variance"}
 
 
 def test_api_reference_headings_match_signatures():
