@@ -26,6 +26,8 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
 * scenario grids (``volsweep.scenarios``, 21 x 7 shocks on up to 1M positions) against
   one ``volsweep.price`` call on the same rows: revaluations/s over rows/s
   (``benchmarks/bench_risk.py``);
+* the chain operations (``implied_forwards``, ``model_free_variance``) on 1.92M rows
+  against one ``implied_vol`` pass on the same rows (``benchmarks.bench_chains``);
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -368,6 +370,8 @@ def main(argv=None, rows: int | None = None) -> int:
     table_section(args.rows, args.repeats)
     small_batch_section(args.repeats, before=args.before)
     bench_risk.risk_section(min(args.rows, 1_000_000), max(3, args.repeats // 2))
+    from benchmarks.bench_chains import chains_section
+    chains_section(repeats=args.repeats)     # group operations against one implied-vol pass
     latency_section()
     if args.asm:
         asm_section()

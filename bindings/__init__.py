@@ -19,6 +19,8 @@ _EXPORTS = {
     "OPERATIONS": "kernel.registry",
     "OptionError": "_columns", "IgnoredInputWarning": "_columns",
     "position_greeks": "risk", "scenarios": "risk",
+    "implied_forwards": "chains", "model_free_variance": "chains",
+    "constant_maturity_variance": "chains",
 }
 
 __all__ = sorted(_EXPORTS)

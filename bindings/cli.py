@@ -7,6 +7,8 @@ Commands:
   sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
   backfill SRC DST         sweep every partition of a dataset on Dask, resumably
   risk IN -o OUT           P&L of a book under spot x vol shocks per group (full revaluation)
+  forwards IN -o OUT       implied forward and discount per expiry (put-call parity)
+  variance IN -o OUT       model-free implied variance per expiry, or at fixed horizons
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -421,6 +423,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     from . import cli_risk
     cli_risk.add_parser(sub)
+    from .cli_chains import add_parser as _add_chain_commands
+    _add_chain_commands(sub)                  # forwards, variance
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)

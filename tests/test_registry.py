@@ -148,7 +148,8 @@ def test_public_functions_are_the_expected_ones():
     assert set(_public_functions()) == {"price", "implied_vol", "greeks", "sweep",
                                         "prepare", "warmup", "backfill",
                                         "position_greeks", "scenarios", "fit_smiles",
-                                        "smile_vols"}
+                                        "smile_vols", "implied_forwards", "model_free_variance",
+                                        "constant_maturity_variance"}
 
 
 def test_api_reference_headings_match_signatures():
