@@ -6,6 +6,7 @@ Commands:
   price IN -o OUT          price every row of a file (needs a vol column)
   sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
   backfill SRC DST         sweep every partition of a dataset on Dask, resumably
+  smile IN --underlying NAME -o PICTURE   fit one underlying's SVI smiles and draw them
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -417,6 +418,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="rows per batch (default: %(default)s)")
     _sweep_args(bf)
     bf.set_defaults(func=cmd_backfill)
+
+    __import__("volsweep.cli_smiles", fromlist=["add_parser"]).add_parser(sub)   # smile
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)
