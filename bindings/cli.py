@@ -9,6 +9,7 @@ Commands:
   risk IN -o OUT           P&L of a book under spot x vol shocks per group (full revaluation)
   forwards IN -o OUT       implied forward and discount per expiry (put-call parity)
   variance IN -o OUT       model-free implied variance per expiry, or at fixed horizons
+  smile IN --underlying NAME -o PICTURE   fit one underlying's SVI smiles and draw them
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -425,6 +426,8 @@ def build_parser() -> argparse.ArgumentParser:
     cli_risk.add_parser(sub)
     from .cli_chains import add_parser as _add_chain_commands
     _add_chain_commands(sub)                  # forwards, variance
+    from .cli_smiles import add_parser as _add_smile_command
+    _add_smile_command(sub)                   # smile
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)

@@ -533,16 +533,20 @@ def _blend_free(p, w0, R, gs):
 
 # --------------------------------------------------------------------- one slice
 @_njit_sums
-def _vol_errors(k, v, o, e, a, b, rho, m, sig, inv_t):
-    """Sum of squared differences of fitted and market vols over quotes [o, e)."""
-    err = 0.0
+def _vol_errors(k, v, W, o, e, a, b, rho, m, sig, inv_t):
+    """Root mean square of fitted minus market vols over quotes [o, e), each weighted by
+    its u_i (= W_i v_i up to a constant: W_i = u_i / v_i normalised)."""
+    num = 0.0
+    den = 0.0
     ss = sig * sig
     for j in range(o, e):
         x = k[j] - m
         wf = a + b * (rho * x + math.sqrt(x * x + ss))
         dv = math.sqrt(max(wf, 0.0) * inv_t) - math.sqrt(v[j] * inv_t)
-        err += dv * dv
-    return err
+        u = W[j] * v[j]
+        num += u * dv * dv
+        den += u
+    return math.sqrt(num / den)
 
 
 @_njit
@@ -669,7 +673,7 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     for j in range(_N_PARAMS):
         params[s, j] = p[j]
     a, b, rho, m, sig = p[0], p[1], p[2], p[3], p[4]
-    rmse[s] = math.sqrt(_vol_errors(k, v, o, ee, a, b, rho, m, sig, 1.0 / t_s) / nu)
+    rmse[s] = _vol_errors(k, v, W, o, ee, a, b, rho, m, sig, 1.0 / t_s)
     w0 = total_variance(0.0, a, b, rho, m, sig)
     if w0 > 0.0:
         atm_vol[s] = math.sqrt(w0 / t_s)

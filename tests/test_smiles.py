@@ -393,3 +393,42 @@ def test_demo_snapshot_end_to_end():
     # the quotes come from SVI smiles (data_gen) rounded to ticks: near the money the
     # fitted vols are close to the generating ones
     assert np.median(err) < 0.01
+
+
+# ------------------------------------------------------------------ the picture command
+def test_smile_command_draws_a_picture(tmp_path, capsys):
+    pytest.importorskip("matplotlib")
+    from volsweep.cli import main
+    from volsweep.data_gen import make_snapshot, write_snapshot
+
+    snap = make_snapshot(20_000, seed=4, n_underlyings=6)
+    name = snap.column("underlying")[0].as_py()
+    src = write_snapshot(snap, str(tmp_path / "snap.parquet"))
+    out = tmp_path / "smile.png"
+    fits = tmp_path / "fits.csv"
+    assert main(["smile", src, "--underlying", name, "-o", str(out), "--expiries", "3",
+                 "--fits", str(fits)]) == 0
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "arbitrage flags:" in capsys.readouterr().err
+    assert fits.stat().st_size > 0
+    # an existing picture is not replaced without --overwrite
+    assert main(["smile", src, "--underlying", name, "-o", str(out)]) == 2
+    assert main(["smile", src, "--underlying", "NOPE", "-o", str(tmp_path / "x.png")]) == 2
+
+
+def test_smile_command_without_matplotlib_says_how_to_install(tmp_path, capsys, monkeypatch):
+    import builtins
+
+    from volsweep.cli import main
+
+    real = builtins.__import__
+
+    def no_matplotlib(name, *args, **kwargs):
+        if name == "matplotlib" or name.startswith("matplotlib."):
+            raise ImportError("no matplotlib here")
+        return real(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", no_matplotlib)
+    assert main(["smile", "missing.parquet", "--underlying", "KAQU",
+                 "-o", str(tmp_path / "s.png")]) == 2
+    assert "volsweep[plot]" in capsys.readouterr().err
