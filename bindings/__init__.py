@@ -14,6 +14,7 @@ __version__ = "0.1.0"
 _EXPORTS = {
     "price": "api", "implied_vol": "api", "greeks": "api", "sweep": "api",
     "prepare": "api", "backfill": "dask_backfill", "warmup": "loader",
+    "fit_smiles": "smiles", "smile_vols": "smiles",
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
     "OptionError": "_columns", "IgnoredInputWarning": "_columns",

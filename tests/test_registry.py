@@ -147,7 +147,8 @@ def test_public_functions_are_the_expected_ones():
     # guards the checks below against an empty or shrunken list
     assert set(_public_functions()) == {"price", "implied_vol", "greeks", "sweep",
                                         "prepare", "warmup", "backfill",
-                                        "position_greeks", "scenarios"}
+                                        "position_greeks", "scenarios", "fit_smiles",
+                                        "smile_vols"}
 
 
 def test_api_reference_headings_match_signatures():
