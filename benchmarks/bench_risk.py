@@ -64,7 +64,7 @@ def risk_section(n: int = 1_000_000, repeats: int = 5, threads=None) -> dict:
           f"{'grid s':>7s}  ratio (target >= 0.8)")
     try:
         for name, m in registry.MODELS.items():
-            if name not in krisk.PRICERS:
+            if (name, m.exercise) not in krisk.PRICERS:
                 print(f"  {name:10s} skipped: no scenario pricer")
                 continue
             b = book(n, m)
@@ -84,7 +84,8 @@ def risk_section(n: int = 1_000_000, repeats: int = 5, threads=None) -> dict:
     return out
 
 
-@pytest.mark.parametrize("model", [m for m in registry.MODEL_NAMES if m in krisk.PRICERS])
+@pytest.mark.parametrize("model", [m for m in registry.MODEL_NAMES
+                                   if (m, "european") in krisk.PRICERS])
 def test_scenarios_100k(benchmark, model):
     import volsweep
 

@@ -26,6 +26,7 @@ from volsweep.kernel import risk as _risk
 from volsweep.kernel import status as _status
 from volsweep.kernel.registry import DEFAULT_MODEL
 
+from ._columns import KNOWN_NAMES as _KNOWN
 from ._columns import ColumnPlan, OptionError, _to_float64, _value_type
 from ._input import as_batches
 from ._output import status_column
@@ -41,6 +42,7 @@ DEFAULT_SPOT_SHOCKS = tuple(k / 100 for k in range(-10, 11))
 DEFAULT_VOL_SHOCKS = tuple(k / 100 for k in range(-3, 4))
 _DAYS_PER_YEAR = 365.0          # ACT/365F, as the expiry columns
 _COUNT_COLUMNS = ("rows", "rows_left_out")
+_EXERCISE = "exercise"          # an exercise-style column (see _no_exercise_column)
 
 
 # ------------------------------------------------------------------ inputs
@@ -53,8 +55,9 @@ def _split_columns(columns):
     if not isinstance(columns, Mapping):
         raise TypeError("columns= must be a dict of {our input name: your column name}, "
                         f"got {type(columns).__name__}")
-    rest = {k: v for k, v in columns.items() if k not in POSITION_INPUTS}
-    pos = {k: v for k, v in columns.items() if k in POSITION_INPUTS}
+    own = set(POSITION_INPUTS) | ({_EXERCISE} - set(_KNOWN))
+    rest = {k: v for k, v in columns.items() if k not in own}
+    pos = {k: v for k, v in columns.items() if k in own}
     for key, value in pos.items():
         if value is not None and not isinstance(value, str):
             raise TypeError(f"columns[{key!r}] must be a column name (str) or None, got "
@@ -62,8 +65,22 @@ def _split_columns(columns):
     return rest, pos
 
 
+def _no_exercise_column(schema: pa.Schema, pos: dict) -> None:
+    """Refuse a book that says a row is American where the column plan does not read
+    exercise styles: valuing such rows as European would be silently wrong."""
+    if _EXERCISE in _KNOWN:
+        return                        # the column plan reads it (the model decides)
+    col = pos.get(_EXERCISE, _EXERCISE)
+    if col is not None and col in schema.names:
+        raise OptionError("columns", "the input has an exercise-style column {col!r}, but "
+                          "position risk values European exercise only; map it to no "
+                          "column to value every row as European ({unmap})", col=col,
+                          name=_EXERCISE)
+
+
 def _position_sources(schema: pa.Schema, pos: dict) -> dict:
     """position input -> source column, checked against ``schema``."""
+    _no_exercise_column(schema, pos)
     names = schema.names
     out = {}
     for name, (default, doc) in POSITION_INPUTS.items():
@@ -333,10 +350,7 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
                   as_of, progress) -> ScenarioResult:
     """``scenarios`` over (schema, batches), with the status counts of the rows."""
     entry = _registry.model(model)
-    pricer = _risk.PRICERS.get(entry.name)
-    if pricer is None:
-        raise ValueError(f"scenarios do not know model {model!r} yet (no scenario pricer "
-                         "in kernel/risk.py)")
+    pricer = _risk.pricer_of(entry.name, entry.exercise)
     ds = _shocks(DEFAULT_SPOT_SHOCKS if spot_shocks is None else spot_shocks, "spot_shocks")
     dv = _shocks(DEFAULT_VOL_SHOCKS if vol_shocks is None else vol_shocks, "vol_shocks")
     if entry.vol == "lognormal" and np.any(ds <= -1.0):
@@ -355,28 +369,30 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
     out_names = ("spot_shock", "vol_shock", "pnl", "rows", "rows_left_out",
                  "rows_shock_invalid")
     by = _check_by(by, schema, out_names)
-    extra = next((x for x in entry.extras if x.name == pricer.extra), None)
+    by_name = {x.name: x for x in entry.extras}
+    read = [by_name[name] for name in pricer.extras]          # as X1, X2
     load_kernel(entry.name, "price")
-    parts = {k: [] for k in ("U", "K", "T", "D", "X", "vol", "cp", "st", "w")}
+    parts = {k: [] for k in ("U", "K", "T", "D", "X1", "X2", "vol", "cp", "st", "w")}
     keys = {c: [] for c in by}
     for batch in batches:
         T = plan.expiry_years(batch)
         U = plan.floats(batch, entry.underlying)
         K = plan.floats(batch, "strike")
         D = plan.discount(batch, T)
-        extras = tuple(plan.extra(batch, x) for x in entry.extras)
+        extras = {x.name: plan.extra(batch, x) for x in entry.extras}
         vol = plan.floats(batch, "vol")
         cp = plan.call_put(batch)
         n = batch.num_rows
         price, st = np.empty(n), np.empty(n, np.int8)
         with launch_guard():
-            entry.kernels["price"](U, K, T, D, *extras, vol, cp, price, st)
+            entry.kernels["price"](U, K, T, D, *extras.values(), vol, cp, price, st)
         q, m = _position_arrays(batch, sources)
         parts["U"].append(U)
         parts["K"].append(K)
         parts["T"].append(T)
         parts["D"].append(D)
-        parts["X"].append(plan.extra(batch, extra) if extra is not None else np.zeros(n))
+        for j, key in enumerate(("X1", "X2")):
+            parts[key].append(extras[read[j].name] if j < len(read) else np.zeros(n))
         parts["vol"].append(vol)
         parts["cp"].append(cp)
         parts["st"].append(position_status(st, q, m))
@@ -402,13 +418,15 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
     nsc = len(ds) * len(dv)
     pnl = np.empty((n_groups, nsc))
     bad = np.empty((n_groups, nsc), np.int64)
-    load_kernel_scenarios(entry.name)
+    load_kernel_scenarios(entry.name, entry.exercise)
     with launch_guard():
         _risk.scenario_pnl(entry.name, sorted_["U"], sorted_["K"], sorted_["T"],
-                           sorted_["D"], sorted_["X"], sorted_["vol"], sorted_["cp"],
+                           sorted_["D"], sorted_["X1"], sorted_["X2"], sorted_["vol"],
+                           sorted_["cp"],
                            (sorted_["st"] == _status.OK).astype(np.int8), sorted_["w"],
                            g_sorted, ds, dv, days / _DAYS_PER_YEAR, pnl, bad,
-                           progress=None if progress is None else progress.update)
+                           progress=None if progress is None else progress.update,
+                           exercise=entry.exercise)
     rep = np.repeat(first, nsc)
     out = _key_columns(by, key_arrays, rep)
     out["spot_shock"] = pa.array(np.tile(np.repeat(ds, len(dv)), n_groups), pa.float64())
@@ -433,10 +451,10 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
 _SCENARIO_LOADED: set = set()
 
 
-def load_kernel_scenarios(model: str) -> None:
+def load_kernel_scenarios(model: str, exercise: str = "european") -> None:
     """Compile (or load) the model's scenario loops once per process, on a few rows, with
     a note on stderr when that takes long (a compile)."""
-    if model in _SCENARIO_LOADED:
+    if (model, exercise) in _SCENARIO_LOADED:
         return
     import sys
     import time
@@ -445,15 +463,15 @@ def load_kernel_scenarios(model: str) -> None:
     n = 3
     ones = np.ones(n)
     with launch_guard():
-        _risk.scenario_pnl(model, ones, ones, ones, ones, np.zeros(n), 0.2 * ones,
-                           np.ones(n, np.int8), np.ones(n, np.int8), ones,
+        _risk.scenario_pnl(model, ones, ones, ones, ones, np.zeros(n), np.zeros(n),
+                           0.2 * ones, np.ones(n, np.int8), np.ones(n, np.int8), ones,
                            np.zeros(n, np.int64), [0.0], [0.0], 0.0, np.empty((1, 1)),
-                           np.empty((1, 1), np.int64))
+                           np.empty((1, 1), np.int64), exercise=exercise)
     took = time.perf_counter() - t0
     if took > 2.0:
-        print(f"volsweep: compiled the {model} scenario kernels in {took:.0f} s (once per "
-              "machine)", file=sys.stderr)
-    _SCENARIO_LOADED.add(model)
+        print(f"volsweep: compiled the {model} ({exercise}) scenario kernels in {took:.0f} s "
+              "(once per machine)", file=sys.stderr)
+    _SCENARIO_LOADED.add((model, exercise))
 
 
 def scenarios(data, model: str = DEFAULT_MODEL, by=("underlying",),

@@ -42,7 +42,7 @@ payoff at the shocked underlying, undiscounted (no interest between its expiry a
 shifted valuation date).
 
 Adding a model: one ``ScenarioPricer`` in ``PRICERS`` (its two scalar functions below,
-and the name of the one extra input it reads); ``scenario_pnl`` does the rest.
+and the names of the extra inputs it reads, at most two); ``scenario_pnl`` does the rest.
 """
 
 from __future__ import annotations
@@ -63,22 +63,23 @@ from .special import INF, NAN, exp
 
 # ----------------------------------------------------------- per-model scalar pricers
 #
-# value(U, K, T, D, X, vol, cp): the discounted price at a (shocked) underlying U and vol
-# for T > 0, vol >= 0, cp = +-1 and the row's other inputs valid at base; NaN where the
-# shocked inputs are outside the model's range.  X is the model's one extra input (0.0
-# for a model without one).  payoff(U, K, X, cp): the value at or after expiry.
+# value(U, K, T, D, X1, X2, vol, cp): the discounted price at a (shocked) underlying U
+# and vol for T > 0, vol >= 0, cp = +-1 and the row's other inputs valid at base; NaN
+# where the shocked inputs are outside the model's range.  X1, X2: the extra inputs the
+# pricer names (``ScenarioPricer.extras``, in that order; 0.0 where it names fewer).
+# payoff(U, K, X1, X2, cp): the value at or after expiry.
 # Each is the arithmetic of the model's price kernel, so a zero shock reproduces the
 # base value exactly (the base is computed by the same code, see _revalue_template).
 
 @scalar
-def _bsm_value(S, K, T, D, q, vol, cp):
+def _bsm_value(S, K, T, D, q, X2, vol, cp):
     f = S * exp(-q * T) / D                       # as black.bsm_inputs
     p = black_price(f if f > 0.0 else 1.0, K, vol * math.sqrt(T), D, cp)
     return p if (f > 0.0 and f < INF) else NAN
 
 
 @scalar
-def _black76_value(F, K, T, D, shift, vol, cp):
+def _black76_value(F, K, T, D, shift, X2, vol, cp):
     f = F + shift                                 # as black.shifted_inputs
     k = K + shift
     p = black_price(f if f > 0.0 else 1.0, k, vol * math.sqrt(T), D, cp)
@@ -86,7 +87,7 @@ def _black76_value(F, K, T, D, shift, vol, cp):
 
 
 @scalar
-def _bachelier_value(F, K, T, D, X, vol, cp):
+def _bachelier_value(F, K, T, D, X1, X2, vol, cp):
     x = F - K                                     # as bachelier.bachelier_inputs
     ok = abs(x) < INF
     p = bachelier_price(x if ok else 0.0, vol * math.sqrt(T), D, cp)
@@ -94,7 +95,7 @@ def _bachelier_value(F, K, T, D, X, vol, cp):
 
 
 @scalar
-def _payoff(U, K, X, cp):
+def _payoff(U, K, X1, X2, cp):
     """max(cp (U - K), 0): the payoff of a European option on U (spot or forward; a
     shift cancels in F + shift - (K + shift))."""
     return max(cp * (U - K), 0.0)
@@ -104,17 +105,19 @@ def _payoff(U, K, X, cp):
 class ScenarioPricer:
     """How ``scenario_pnl`` revalues one model's contracts (see the module docstring)."""
 
-    value: object            # @scalar (U, K, T, D, X, vol, cp) -> price, T > 0
-    payoff: object           # @scalar (U, K, X, cp) -> value at or after expiry
-    extra: str | None        # the registry input read as X, or None (X = 0.0)
+    value: object            # @scalar (U, K, T, D, X1, X2, vol, cp) -> price, T > 0
+    payoff: object           # @scalar (U, K, X1, X2, cp) -> value at or after expiry
+    extras: tuple = ()       # the registry inputs read as X1, X2 (at most two)
 
 
-# One entry per model of kernel/registry.MODELS (tests/test_risk.py checks that each has
-# one).  A model priced by another scalar (e.g. American exercise) is one more entry.
+# One entry per (model name, exercise style) of kernel/registry (tests/test_risk.py checks
+# every European model has one).  A model priced by another scalar is one more entry: an
+# American price, say, as ("bsm", "american") with extras ("div_yield", "exercise"), its
+# value computing r = -ln(D)/T and pricing a row flagged European with black_price.
 PRICERS = {
-    "bsm": ScenarioPricer(_bsm_value, _payoff, "div_yield"),
-    "black76": ScenarioPricer(_black76_value, _payoff, "shift"),
-    "bachelier": ScenarioPricer(_bachelier_value, _payoff, None),
+    ("bsm", "european"): ScenarioPricer(_bsm_value, _payoff, ("div_yield",)),
+    ("black76", "european"): ScenarioPricer(_black76_value, _payoff, ("shift",)),
+    ("bachelier", "european"): ScenarioPricer(_bachelier_value, _payoff, ()),
 }
 
 
@@ -126,7 +129,7 @@ PRICERS = {
 # 0 for rows that are not ok, NaN for ok rows whose shocked inputs have no value (or whose
 # contribution w (V - base) is not a finite double).
 # Copied per model with VALUE and PAYOFF as frozen globals (_jit.specialise).
-def _revalue_template(a, e, U, K, T, D, X, vol, cp, ok, w, base, ds, dv, rel, out):
+def _revalue_template(a, e, U, K, T, D, X1, X2, vol, cp, ok, w, base, ds, dv, rel, out):
     up = 1.0 + ds
     for i in range(np.uint64(a), np.uint64(e)):  # unsigned: no wraparound selects
         t = T[i]
@@ -134,9 +137,11 @@ def _revalue_template(a, e, U, K, T, D, X, vol, cp, ok, w, base, ds, dv, rel, ou
         u = U[i] * up
         v = vol[i] + dv
         c = float(cp[i])
-        p = VALUE(u, K[i], t if live else 1.0, D[i], X[i], v if v >= 0.0 else 0.0,  # noqa: F821
-                  c)
-        p = p if live else PAYOFF(u, K[i], X[i], c)  # noqa: F821
+        x1 = X1[i]
+        x2 = X2[i]
+        p = VALUE(u, K[i], t if live else 1.0, D[i], x1, x2,  # noqa: F821
+                  v if v >= 0.0 else 0.0, c)
+        p = p if live else PAYOFF(u, K[i], x1, x2, c)  # noqa: F821
         p = p if (v >= 0.0 and abs(p) < INF) else NAN
         r = w[i] * (p - base[i]) if rel != 0.0 else p
         r = r if abs(r) < INF else NAN            # an overflowing contribution: no value
@@ -175,7 +180,7 @@ def _piece_sum(buf, s, t):
 # Blocks b0 <= b < b1 of the grid: per block the base values, then every scenario into the
 # block's part of buf, summed per piece into psum / pbad.  Copied per model with REVALUE
 # (the model's row loop) as a frozen global.
-def _grid_template(b0, b1, U, K, T, D, X, vol, cp, ok, w, T1, D1, ds, dv, piece_lo,
+def _grid_template(b0, b1, U, K, T, D, X1, X2, vol, cp, ok, w, T1, D1, ds, dv, piece_lo,
                    piece_start, piece_end, base, buf, psum, pbad):
     n = U.shape[0]
     nv = dv.shape[0]
@@ -184,14 +189,15 @@ def _grid_template(b0, b1, U, K, T, D, X, vol, cp, ok, w, T1, D1, ds, dv, piece_
         a = blk * BLOCK
         e = min(n, a + BLOCK)
         # the base values through the scenario's own code (a zero shock gives exactly 0)
-        REVALUE(a, e, U, K, T, D, X, vol, cp, ok, w, base, 0.0, 0.0, 0.0, buf)  # noqa: F821
+        REVALUE(a, e, U, K, T, D, X1, X2, vol, cp, ok, w, base, 0.0, 0.0, 0.0,  # noqa: F821
+                buf)
         for i in range(a, e):
             base[i] = buf[i]
         for si in range(ds.shape[0]):
             for vi in range(nv):
                 sc = si * nv + vi
-                REVALUE(a, e, U, K, T1, D1, X, vol, cp, ok, w, base, ds[si], dv[vi],  # noqa: F821
-                        1.0, buf)
+                REVALUE(a, e, U, K, T1, D1, X1, X2, vol, cp, ok, w, base,  # noqa: F821
+                        ds[si], dv[vi], 1.0, buf)
                 for k in range(piece_lo[blk], piece_lo[blk + 1]):
                     tot, bad = _piece_sum(buf, piece_start[k], piece_end[k])
                     psum[k, sc] = tot
@@ -209,16 +215,14 @@ def _reduce_pieces(piece_group, psum, pbad, pnl, bad):
 
 
 @functools.lru_cache(maxsize=None)
-def grid_loops(model: str):
-    """(row loop, parallel grid loop) of ``model``, compiled on first use."""
-    try:
-        pricer = PRICERS[model]
-    except KeyError:
-        raise ValueError(f"no scenario pricer for model {model!r} (kernel/risk.py "
-                         f"PRICERS has {', '.join(PRICERS)})") from None
-    row_loop = rows(specialise(_revalue_template, f"risk_revalue_{model}",
+def grid_loops(model: str, exercise: str = "european"):
+    """(row loop, parallel grid loop) of ``model`` with this exercise style, compiled on
+    first use."""
+    pricer = pricer_of(model, exercise)
+    tag = f"{model}_{exercise}"
+    row_loop = rows(specialise(_revalue_template, f"risk_revalue_{tag}",
                                VALUE=pricer.value, PAYOFF=pricer.payoff))
-    grid = loop(specialise(_grid_template, f"risk_grid_{model}", REVALUE=row_loop))
+    grid = loop(specialise(_grid_template, f"risk_grid_{tag}", REVALUE=row_loop))
     return row_loop, grid
 
 
@@ -252,12 +256,22 @@ def shifted_time(T, D, dt):
     return _args.floats(T1, D1)
 
 
-def scenario_pnl(model, U, K, T, D, X, vol, cp, ok, w, group, spot_shocks, vol_shocks,
-                 dt, pnl, bad, progress=None):
+def pricer_of(model: str, exercise: str = "european") -> ScenarioPricer:
+    """The ``ScenarioPricer`` of (model, exercise); ValueError when there is none."""
+    try:
+        return PRICERS[(model, exercise)]
+    except (KeyError, TypeError):
+        known = ", ".join(f"{m} ({x})" for m, x in PRICERS)
+        raise ValueError(f"no scenario pricer for model {model!r} with {exercise} exercise "
+                         f"(kernel/risk.py PRICERS has {known})") from None
+
+
+def scenario_pnl(model, U, K, T, D, X1, X2, vol, cp, ok, w, group, spot_shocks, vol_shocks,
+                 dt, pnl, bad, progress=None, exercise="european"):
     """P&L of a spot x vol scenario grid per group, by full revaluation.
 
-    U, K, T, D, X (the model's extra input, ``PRICERS[model].extra``; zeros if none), vol:
-    float64 arrays of one length n, sorted by ``group`` (int64, non-decreasing, values in
+    U, K, T, D, X1, X2 (the extra inputs of ``pricer_of(model, exercise).extras``, zeros
+    where it names fewer), vol: float64 arrays of one length n, sorted by ``group`` (int64, non-decreasing, values in
     [0, n_groups)); cp: int8 call/put codes; ok: int8, 1 for the rows that enter the grid;
     w: quantity x multiplier per row.  spot_shocks (relative, > -1 for a positive
     underlying), vol_shocks (absolute): float64; dt: time shift in years (>= 0).
@@ -266,7 +280,7 @@ def scenario_pnl(model, U, K, T, D, X, vol, cp, ok, w, group, spot_shocks, vol_s
     Both are overwritten.  ``progress``: None, or called with the rows done after each
     launch of CHUNK_BLOCKS blocks.
     """
-    U, K, T, D, X, vol, w = _args.floats(U, K, T, D, X, vol, w)
+    U, K, T, D, X1, X2, vol, w = _args.floats(U, K, T, D, X1, X2, vol, w)
     n = U.shape[0]
     cp = _args.codes(n, cp)
     ok = np.ascontiguousarray(ok, dtype=np.int8)
@@ -295,11 +309,11 @@ def scenario_pnl(model, U, K, T, D, X, vol, cp, ok, w, group, spot_shocks, vol_s
     pbad = np.empty((starts.shape[0], nsc), np.int64)
     base = np.empty(n)
     buf = np.empty(n)
-    _, grid = grid_loops(model)
+    _, grid = grid_loops(model, exercise)
     nb = lo.shape[0] - 1
     for b0 in range(0, nb, CHUNK_BLOCKS):
         b1 = min(nb, b0 + CHUNK_BLOCKS)
-        grid(b0, b1, U, K, T, D, X, vol, cp, ok, w, T1, D1, ds, dv, lo, starts, ends,
+        grid(b0, b1, U, K, T, D, X1, X2, vol, cp, ok, w, T1, D1, ds, dv, lo, starts, ends,
              base, buf, psum, pbad)
         if progress is not None:
             progress(min(n, b1 * BLOCK) - min(n, b0 * BLOCK))
