@@ -5,11 +5,13 @@ Commands:
   gen -n N -o FILE         write a synthetic snapshot to Parquet
   price IN -o OUT          price every row of a file (needs a vol column)
   sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
-  backfill SRC DST         sweep every partition of a dataset on Dask, resumably
+  backfill SRC DST         sweep (or --operation forwards/variance/smiles) every partition
+                           of a dataset on Dask, resumably
   risk IN -o OUT           P&L of a book under spot x vol shocks per group (full revaluation)
   forwards IN -o OUT       implied forward and discount per expiry (put-call parity)
   variance IN -o OUT       model-free implied variance per expiry, or at fixed horizons
   smile IN --underlying NAME -o PICTURE   fit one underlying's SVI smiles and draw them
+  history VARIANCE -o OUT  constant-maturity vols per day from backfilled chain results
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -271,9 +273,17 @@ def cmd_backfill(args) -> int:
     from .dask_backfill import find_partitions
 
     parts = find_partitions(args.src)
+    options = _sweep_options(args)
+    if args.operation != "sweep":
+        options = dict(columns=options["columns"], as_of=options["as_of"],
+                       quotes=options["quotes"], operation=args.operation,
+                       by=_backfill_by(args.by), options=_group_extra(args))
+    elif args.by or args.min_pairs is not None or args.arbitrage_free:
+        raise CliError("--by, --min-pairs and --arbitrage-free apply to the group "
+                       "operations (--operation forwards, variance or smiles)")
     res = _planned(backfill, args.src, args.dst, scheduler=args.scheduler,
                    n_workers=args.workers, batch_rows=args.batch_rows,
-                   progress=Progress(len(parts), unit="partitions"), **_sweep_options(args))
+                   progress=Progress(len(parts), unit="partitions"), **options)
     print(f"backfill: {res.partitions:,d} partitions ({res.written:,d} written, "
           f"{res.skipped:,d} already complete), {res.rows_written:,d} rows written in "
           f"{res.seconds:.1f} s -> {args.dst}", file=sys.stderr)
@@ -281,6 +291,28 @@ def cmd_backfill(args) -> int:
     if summary:
         print(summary, file=sys.stderr)
     return 0
+
+
+def _backfill_by(text):
+    if text is None:
+        return None
+    words = tuple(w.strip() for w in text.split(",") if w.strip())
+    if not words:
+        raise CliError("--by expects a comma-separated list of column names")
+    return words
+
+
+def _group_extra(args) -> dict:
+    extra = {}
+    if args.min_pairs is not None:
+        if args.operation != "forwards":
+            raise CliError("--min-pairs applies to --operation forwards")
+        extra["min_pairs"] = args.min_pairs
+    if args.arbitrage_free:
+        if args.operation != "smiles":
+            raise CliError("--arbitrage-free applies to --operation smiles")
+        extra["arbitrage_free"] = True
+    return extra
 
 
 def cmd_bench(args) -> int:
@@ -419,6 +451,17 @@ def build_parser() -> argparse.ArgumentParser:
                     help="worker processes of the local cluster (default: one per core)")
     bf.add_argument("--batch-rows", type=int, default=_default_batch_rows(), metavar="N",
                     help="rows per batch (default: %(default)s)")
+    bf.add_argument("--operation", default="sweep",
+                    choices=["sweep", "forwards", "variance", "smiles"],
+                    help="sweep: every row (default); forwards, variance, smiles: one row "
+                    "per group of --by per partition (implied_forwards, "
+                    "model_free_variance, fit_smiles on implied forwards)")
+    bf.add_argument("--by", metavar="LIST",
+                    help="group columns of the group operations (default: underlying,expiry)")
+    bf.add_argument("--min-pairs", type=int, metavar="N",
+                    help="forwards: fewest two-sided strikes a group's fit uses (default: 3)")
+    bf.add_argument("--arbitrage-free", action="store_true",
+                    help="smiles: keep every fitted slice free of butterfly arbitrage")
     _sweep_args(bf)
     bf.set_defaults(func=cmd_backfill)
 
@@ -428,6 +471,8 @@ def build_parser() -> argparse.ArgumentParser:
     _add_chain_commands(sub)                  # forwards, variance
     from .cli_smiles import add_parser as _add_smile_command
     _add_smile_command(sub)                   # smile
+    from .cli_history import add_parser as _add_history_command
+    _add_history_command(sub)                 # history
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)

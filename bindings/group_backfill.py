@@ -31,7 +31,7 @@ DEFAULT_BY = ("underlying", "expiry")
 # the options each group operation accepts, besides by / columns / as_of, with defaults
 _EXTRA = {
     "forwards": {"quotes": "auto", "min_pairs": 3, "rate_range": (-0.2, 1.0)},
-    "variance": {"quotes": "auto", "min_pairs": 3, "rate_range": (-0.2, 1.0)},
+    "variance": {"quotes": "auto", "forwards": "implied"},
     "smiles": {"quotes": "auto", "arbitrage_free": False},
 }
 
@@ -58,25 +58,39 @@ def _smiles(table: pa.Table, by, columns, as_of, quotes, arbitrage_free) -> pa.T
     from .chains import implied_forwards
     from .smiles import fit_smiles
 
-    chain = implied_forwards(table, by=by, columns=columns, as_of=as_of, quotes=quotes,
-                             attach=True)
-    vols = implied_vol(_for_black76(chain, columns, quotes), model="black76",
-                       columns=_black76_columns(columns), as_of=as_of)
+    name = lambda k: columns.get(k, k)  # noqa: E731
+    have = set(table.column_names)
+    if quotes == "auto":
+        quotes = "bid-ask" if {name("bid"), name("ask")} <= have else "premium"
+    # what the pipeline adds or re-reads must not clash with, or be shadowed by, columns of
+    # the input: its own forward and discount give way to the implied ones; the quote not
+    # used, spot and yield (inputs Black-76 does not read) are left out
+    drop = {"forward", "discount", "forward_status", name("spot"), name("div_yield")}
+    drop |= {name("premium")} if quotes == "bid-ask" else {name("bid"), name("ask")}
+    if name("rate") not in have:
+        drop.discard(name("spot"))      # the fit needs no spot; kept out of Black-76 below
+    chain = implied_forwards(table.drop_columns([c for c in table.column_names
+                                                 if c in drop - {name("spot")}]),
+                             by=by, columns=_without(columns, ("forward", "discount")),
+                             as_of=as_of, quotes=quotes, attach=True)
+    chain = chain.drop_columns([c for c in chain.column_names if c == name("spot")])
+    b76 = _without(columns, ("spot", "div_yield", "forward", "discount", "premium", "bid",
+                             "ask") if quotes == "bid-ask" else
+                   ("spot", "div_yield", "forward", "discount", "premium", "bid", "ask"))
+    vols = implied_vol(chain, model="black76", columns=_quote_map(columns, quotes, b76),
+                       as_of=as_of)
     return fit_smiles(vols, model="black76", by=by, arbitrage_free=arbitrage_free,
-                      columns=_black76_columns(columns), as_of=as_of)
+                      columns=b76 or None, as_of=as_of)
 
 
-def _black76_columns(columns: dict) -> dict:
-    """The user's mapping, less the inputs Black-76 does not read (spot, rate, yield)."""
-    return {k: v for k, v in columns.items() if k not in ("spot", "rate", "div_yield",
-                                                           "discount")}
+def _without(columns: dict, names) -> dict:
+    return {k: v for k, v in columns.items() if k not in names}
 
 
-def _for_black76(chain: pa.Table, columns: dict, quotes: str) -> pa.Table:
-    """The chain with the inputs Black-76 reads: the attached forward and discount; the
-    spot, rate and yield columns (which Black-76 would refuse) dropped."""
-    drop = {columns.get(k, k) for k in ("spot", "rate", "div_yield")}
-    return chain.drop_columns([n for n in chain.column_names if n in drop])
+def _quote_map(columns: dict, quotes: str, base: dict) -> dict | None:
+    keys = ("bid", "ask") if quotes == "bid-ask" else ("premium",)
+    out = dict(base, **{k: columns[k] for k in keys if k in columns})
+    return out or None
 
 
 def run_group(table: pa.Table, operation: str, options: dict) -> pa.Table:
