@@ -17,10 +17,11 @@ Order and determinism
 ---------------------
 The rows arrive sorted by group (the caller sorts stably, so rows keep their input order
 within a group).  The blocks of ``BLOCK`` rows and the group boundaries cut the rows into
-*pieces* (the rows of one group inside one block); each piece's sum is written to its own
-slot (``psum[piece, scenario]``) by the one thread that owns the block, in row order with
-four interleaved accumulators, and the pieces are then added per group in piece order by
-one thread.  Every addition therefore happens in an order fixed by the data alone: the
+*pieces* (the rows of one group inside one block); each piece's sum is written by the one
+thread that owns the block, in row order with four interleaved accumulators: straight
+into the group's result when it is the group's only piece, else into its own slot
+(``psum[slot, scenario]``), and the pieces of each group of several are then added in
+piece order by one thread.  Every addition therefore happens in an order fixed by the data alone: the
 sums are the same bits whatever the number of threads and however the parallel loop
 schedules the blocks.
 
@@ -148,10 +149,12 @@ def _revalue_template(a, e, U, K, T, D, X1, X2, vol, cp, ok, w, base, ds, dv, re
         out[i] = r if ok[i] != 0 else 0.0
 
 
-@njit(error_model="numpy", fastmath=set(FASTMATH), cache=True, nogil=True)
+@njit(inline="always", error_model="numpy", fastmath=set(FASTMATH), cache=True,
+      nogil=True)
 def _piece_sum(buf, s, t):
     """(sum, count) of buf[s:t] without its NaNs, and the count of NaNs: four interleaved
-    accumulators in a fixed order (the order depends on s and t only)."""
+    accumulators in a fixed order (the order depends on s and t only).  Inlined into the
+    grid loop: with many small groups it runs once per piece and scenario."""
     a0 = 0.0
     a1 = 0.0
     a2 = 0.0
@@ -178,10 +181,12 @@ def _piece_sum(buf, s, t):
 
 
 # Blocks b0 <= b < b1 of the grid: per block the base values, then every scenario into the
-# block's part of buf, summed per piece into psum / pbad.  Copied per model with REVALUE
-# (the model's row loop) as a frozen global.
+# block's part of buf, summed per piece: into pnl / bad directly for a group's only piece
+# (no other block touches that group), else into its slot of psum / pbad.  Copied per
+# model with REVALUE (the model's row loop) as a frozen global.
 def _grid_template(b0, b1, U, K, T, D, X1, X2, vol, cp, ok, w, T1, D1, ds, dv, piece_lo,
-                   piece_start, piece_end, base, buf, psum, pbad):
+                   piece_start, piece_end, piece_group, piece_slot, base, buf, psum, pbad,
+                   pnl, bad_out):
     n = U.shape[0]
     nv = dv.shape[0]
     for j in prange(b1 - b0):
@@ -200,18 +205,27 @@ def _grid_template(b0, b1, U, K, T, D, X1, X2, vol, cp, ok, w, T1, D1, ds, dv, p
                         ds[si], dv[vi], 1.0, buf)
                 for k in range(piece_lo[blk], piece_lo[blk + 1]):
                     tot, bad = _piece_sum(buf, piece_start[k], piece_end[k])
-                    psum[k, sc] = tot
-                    pbad[k, sc] = bad
+                    j = piece_slot[k]
+                    if j < 0:
+                        pnl[piece_group[k], sc] = tot
+                        bad_out[piece_group[k], sc] = bad
+                    else:
+                        psum[j, sc] = tot
+                        pbad[j, sc] = bad
 
 
 @njit(error_model="numpy", fastmath=set(FASTMATH), cache=True, nogil=True)
-def _reduce_pieces(piece_group, psum, pbad, pnl, bad):
-    """pnl[g] = sum of psum over the pieces of g, in piece (= row) order; bad likewise."""
+def _reduce_pieces(piece_group, piece_slot, psum, pbad, pnl, bad):
+    """pnl[g] = sum of psum over the pieces of each group of several pieces, in piece
+    (= row) order, starting from 0; bad likewise."""
     for k in range(piece_group.shape[0]):
+        j = piece_slot[k]
+        if j < 0:
+            continue
         g = piece_group[k]
         for sc in range(psum.shape[1]):
-            pnl[g, sc] += psum[k, sc]
-            bad[g, sc] += pbad[k, sc]
+            pnl[g, sc] += psum[j, sc]
+            bad[g, sc] += pbad[j, sc]
 
 
 @functools.lru_cache(maxsize=None)
@@ -235,14 +249,22 @@ CHUNK_BLOCKS = 64
 
 def pieces(group: np.ndarray, n_groups: int):
     """The pieces of rows sorted by ``group``: (piece_lo[n_blocks + 1], piece_start,
-    piece_end, piece_group), a piece being the rows of one group inside one block."""
+    piece_end, piece_group, piece_slot), a piece being the rows of one group inside one
+    block; piece_slot is -1 for a group's only piece (its block owns the group's sums and
+    writes them in place) and else the piece's row in the partial sums, numbered in piece
+    order."""
     n = group.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     cuts = np.flatnonzero(group[1:] != group[:-1]) + 1
     starts = np.union1d(cuts, np.arange(0, n, BLOCK, dtype=np.int64)).astype(np.int64)
     ends = np.append(starts[1:], n).astype(np.int64)
     lo = np.searchsorted(starts, np.arange(nb + 1, dtype=np.int64) * BLOCK).astype(np.int64)
-    return lo, starts, ends, np.ascontiguousarray(group[starts], dtype=np.int64)
+    pgroup = np.ascontiguousarray(group[starts], dtype=np.int64)
+    per_group = np.bincount(pgroup, minlength=n_groups)
+    split = per_group[pgroup] > 1
+    slot = np.full(len(starts), -1, np.int64)
+    slot[split] = np.arange(int(split.sum()), dtype=np.int64)
+    return lo, starts, ends, pgroup, slot
 
 
 def shifted_time(T, D, dt):
@@ -304,9 +326,10 @@ def scenario_pnl(model, U, K, T, D, X1, X2, vol, cp, ok, w, group, spot_shocks, 
     if n == 0 or nsc == 0:
         return
     T1, D1 = shifted_time(T, D, float(dt))
-    lo, starts, ends, pgroup = pieces(group, n_groups)
-    psum = np.empty((starts.shape[0], nsc))
-    pbad = np.empty((starts.shape[0], nsc), np.int64)
+    lo, starts, ends, pgroup, slot = pieces(group, n_groups)
+    n_split = int((slot >= 0).sum())
+    psum = np.empty((n_split, nsc))
+    pbad = np.empty((n_split, nsc), np.int64)
     base = np.empty(n)
     buf = np.empty(n)
     _, grid = grid_loops(model, exercise)
@@ -314,7 +337,7 @@ def scenario_pnl(model, U, K, T, D, X1, X2, vol, cp, ok, w, group, spot_shocks, 
     for b0 in range(0, nb, CHUNK_BLOCKS):
         b1 = min(nb, b0 + CHUNK_BLOCKS)
         grid(b0, b1, U, K, T, D, X1, X2, vol, cp, ok, w, T1, D1, ds, dv, lo, starts, ends,
-             base, buf, psum, pbad)
+             pgroup, slot, base, buf, psum, pbad, pnl, bad)
         if progress is not None:
             progress(min(n, b1 * BLOCK) - min(n, b0 * BLOCK))
-    _reduce_pieces(pgroup, psum, pbad, pnl, bad)
+    _reduce_pieces(pgroup, slot, psum, pbad, pnl, bad)

@@ -588,3 +588,20 @@ def test_an_exercise_column_is_not_silently_valued_as_european():
         with pytest.raises(volsweep.OptionError, match="exercise"):
             fn(book)
         fn(book, columns={"exercise": None})          # said to be European: accepted
+
+
+def test_a_book_with_columns_named_like_greek_outputs_is_read(tmp_path):
+    # a risk book often carries its own delta or price column: not an input, carried along
+    book = _book("bsm", n=20).append_column("delta", pa.array(np.ones(20)))
+    book = book.append_column("price", pa.array(np.ones(20)))
+    per_row = volsweep.position_greeks(book, which=["delta"], per_row=True)
+    assert per_row["delta"].to_pylist() == [1.0] * 20
+    ref = volsweep.position_greeks(book.drop_columns(["delta", "price"]), which=["delta"])
+    assert volsweep.position_greeks(book, which=["delta"]).equals(ref)
+    import pyarrow.parquet as pq
+    pq.write_table(book, tmp_path / "b.parquet")
+    from volsweep.cli import main
+    assert main(["risk", str(tmp_path / "b.parquet"), "-o", str(tmp_path / "g.csv"),
+                 "--by", "none", "--spot-shocks=0.1", "--vol-shocks=0"]) == 0
+    got = (tmp_path / "g.csv").read_text().splitlines()
+    assert got[0].startswith('"spot_shock","vol_shock","pnl","rows"') and len(got) == 2
