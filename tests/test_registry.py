@@ -149,7 +149,7 @@ def test_public_functions_are_the_expected_ones():
                                         "prepare", "warmup", "backfill",
                                         "position_greeks", "scenarios", "fit_smiles",
                                         "smile_vols", "implied_forwards", "model_free_variance",
-                                        "constant_maturity_variance"}
+                                        "constant_maturity_variance", "term_history"}
 
 
 def test_api_reference_headings_match_signatures():
