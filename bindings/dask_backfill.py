@@ -70,6 +70,7 @@ class BackfillResult:
     schema: object = None         # the input schema (of the first partition)
     workers: list = field(default_factory=list)    # per task: (pid, numba threads, compiled)
     kernels: set = field(default_factory=set)      # kernel source hashes the tasks ran
+    task_seconds: float = 0.0     # first written task's start to the last one's end
 
     @property
     def rows(self) -> int:
@@ -161,7 +162,7 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     from volsweep.kernel._cache import kernel_source_hash
 
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
-                kernel=kernel_source_hash().hex()[:16])
+                kernel=kernel_source_hash().hex()[:16], start=time.time())
     try:
         source = _open_partition(part, batch_rows, options)
         plan = SweepPlan.build(source.schema, **options)
@@ -178,7 +179,7 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     except (ValueError, TypeError, OSError) as exc:
         raise StreamError(f"partition {part.rel}: {one_line(exc)}") from None
     info["compiled"] = _misses() - before
-    return dict(info, state="written", rows=res.rows, statuses=res.statuses,
+    return dict(info, state="written", rows=res.rows, statuses=res.statuses, end=time.time(),
                 high_vols=res.high_vols, unreadable=source.unreadable)
 
 
@@ -215,7 +216,7 @@ def group_partition(part: Partition, dst_root: str, operation: str, options: dic
     from volsweep.kernel._cache import kernel_source_hash
 
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
-                kernel=kernel_source_hash().hex()[:16])
+                kernel=kernel_source_hash().hex()[:16], start=time.time())
     try:
         stamp = group_stamp(operation, options, _source_rows(part.files))
         done = group_complete(target, stamp)
@@ -234,7 +235,7 @@ def group_partition(part: Partition, dst_root: str, operation: str, options: dic
     info["compiled"] = _misses() - before
     counts: dict = {}
     count_statuses(out, counts)
-    return dict(info, state="written", rows=out.num_rows, statuses=counts,
+    return dict(info, state="written", rows=out.num_rows, statuses=counts, end=time.time(),
                 unreadable=source.unreadable)
 
 
@@ -325,7 +326,9 @@ def backfill(src, dst, *, operation="sweep", model=DEFAULT_MODEL, which=None, un
         seconds=time.perf_counter() - t0, statuses=statuses, high_vols=high_vols,
         unreadable=unreadable, schema=schema,
         workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r],
-        kernels={r["kernel"] for r in results if "kernel" in r})
+        kernels={r["kernel"] for r in results if "kernel" in r},
+        task_seconds=(max(r["end"] for r in written) - min(r["start"] for r in written)
+                      if written else 0.0))
 
 
 def _run_tasks(todo, dst, task, batch_rows, scheduler, n_workers, progress) -> list:
