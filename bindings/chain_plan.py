@@ -206,6 +206,19 @@ class Chain:
         return g
 
 
+def _call_put(plan: ColumnPlan, batch) -> np.ndarray:
+    """+1 call, -1 put, 0 missing; a plain bool column without nulls straight from its
+    bitmap (the column plan's general path otherwise)."""
+    col = batch.column(plan.index["is_call"])
+    if col.type == pa.bool_() and not col.null_count and len(col):
+        bits = np.unpackbits(np.frombuffer(col.buffers()[1], np.uint8), bitorder="little",
+                             count=col.offset + len(col))[col.offset:].view(np.int8)
+        cp = np.left_shift(bits, 1)
+        cp -= 1
+        return cp
+    return plan.call_put(batch)
+
+
 def _cat(parts, dtype=np.float64):
     if not parts:
         return np.empty(0, dtype)
@@ -225,7 +238,7 @@ def read_chain(plan: ChainPlan, batches, schema, *, keep_batches=False, progress
         T = c.expiry_years(batch)
         parts["T"].append(T)
         parts["K"].append(c.floats(batch, "strike"))
-        parts["cp"].append(c.call_put(batch))
+        parts["cp"].append(_call_put(c, batch))
         if plan.quoted:
             parts["bid"].append(c.floats(batch, "bid"))
             parts["ask"].append(c.floats(batch, "ask"))
@@ -261,8 +274,12 @@ def read_chain(plan: ChainPlan, batches, schema, *, keep_batches=False, progress
 
 def _ranked(values: pa.Array, indices: np.ndarray, null_rows: np.ndarray | None):
     """int64 order codes of dictionary ``indices`` into ``values`` (ascending; nulls last)."""
-    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(zero_copy_only=False).astype(np.int64)
-    codes = rank[indices]
+    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(
+        zero_copy_only=False).astype(np.int64)
+    if np.array_equal(rank, np.arange(1, len(rank) + 1)):
+        codes = indices.astype(np.int64)       # a sorted dictionary: the indices order
+    else:
+        codes = rank[indices]
     if null_rows is not None:
         codes[null_rows] = _INT64_MAX
     return codes
@@ -276,13 +293,15 @@ def _order_key(col: pa.ChunkedArray) -> np.ndarray:
     if n == 0:
         return np.empty(0, np.int64)
     if pa.types.is_dictionary(t):
-        col = col.unify_dictionaries()
+        if col.num_chunks > 1:
+            col = col.unify_dictionaries()
         values = col.chunk(0).dictionary if col.num_chunks else pa.array([], t.value_type)
-        idx = pc.fill_null(pa.chunked_array([ch.indices for ch in col.chunks]).cast(pa.int64()),
-                           0).to_numpy()
+        indices = pa.chunked_array([ch.indices for ch in col.chunks])
         nulls = None
         if col.null_count:
             nulls = ~pc.is_valid(col).to_numpy(zero_copy_only=False)
+            indices = pc.fill_null(indices, 0)
+        idx = indices.to_numpy()                # any integer type indexes the ranks
         if pa.types.is_dictionary(values.type):
             raise TypeError("a by= column of nested dictionaries is not supported")
         return _ranked(values, idx, nulls)
@@ -315,12 +334,12 @@ def group_rows(key_cols, n: int):
     come grouped in that order (as a snapshot sorted by underlying and expiry does)."""
     if n == 0:
         return np.zeros(1, np.int64), np.empty(0, np.int64)
-    keys = np.stack([_order_key(c) for c in key_cols])
+    keys = [_order_key(c) for c in key_cols]
     starts = _kchains.segment(keys)
     if starts is not None:
         return starts, np.arange(n, dtype=np.int64)
     order = np.lexsort(keys[::-1])               # stable: input order within a group
-    starts = _kchains.segment(keys[:, order])
+    starts = _kchains.segment([k[order] for k in keys])
     return starts, order.astype(np.int64, copy=False)
 
 

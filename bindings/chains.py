@@ -26,7 +26,6 @@ import pyarrow.compute as pc
 from volsweep.kernel import chains as _kchains
 
 from .chain_plan import ChainPlan, _by_names, group_rows, read_chain, read_input
-from ._output import new_array
 from .loader import launch_guard
 
 GROUP_STATUS = pa.array(_kchains.NAMES, type=pa.string())
@@ -74,7 +73,7 @@ def _fit(chain, plan, min_pairs, rate_lo, rate_hi, sorted_out=None):
         return _kchains.forwards(chain.starts, chain.order, chain.K, chain.cp, chain.bid,
                                  chain.ask, chain.T, chain.D, quoted=plan.quoted,
                                  min_pairs=min_pairs, rate_range=(rate_lo, rate_hi),
-                                 idx_out=sorted_out, scratch=new_array((4, max(chain.n, 1))))
+                                 idx_out=sorted_out, own_order=True)
 
 
 def _group_spot(chain, fit):
@@ -211,8 +210,7 @@ def _variance(chain, plan, forwards, min_pairs=3, rate_range=(-0.2, 1.0)):
     with launch_guard():
         var = _kchains.strip_variance(chain.starts, chain.order, chain.K, chain.cp,
                                       chain.bid, chain.ask, chain.T, F, D, T, st,
-                                      quoted=plan.quoted,
-                                      scratch=new_array((3, max(chain.n, 1))))
+                                      quoted=plan.quoted, own_order=True)
     return T, F, D, var
 
 

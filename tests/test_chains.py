@@ -422,11 +422,20 @@ def test_strip_stops_after_two_strikes_without_a_quote():
     p[put & (K == 85.0)] = 0.0                 # one gap: bridged
     p[put & ((K == 77.5) | (K == 75.0))] = 0.0  # two in a row: the strip ends above them
     c["premium"] = p
-    out = volsweep.model_free_variance(table(c), by=BY, forwards="columns"
-                                       if False else "implied")
-    n_puts_used = np.sum((strikes < 100.0) & (strikes > 77.5)) - 1   # 80 .. 97.5 less 85
-    n_calls_used = np.sum(strikes > 100.0)
-    assert out["strikes_used"][0].as_py() == n_puts_used + 1 + n_calls_used
+    t = table(c)
+    t = t.append_column("forward", pa.array(np.full(t.num_rows, F))).append_column(
+        "discount", pa.array(np.full(t.num_rows, D)))
+    out = volsweep.model_free_variance(t, by=BY, forwards="columns")
+    used = strikes[((strikes > 77.5) & (strikes != 85.0)) | (strikes >= 100.0)]
+    assert out["strikes_used"][0].as_py() == used.size
+    # the rule written out (puts below K0 = 100, calls above, their average at K0; each
+    # strike weighs half the distance between its neighbours in the strip)
+    call, put = c["premium"][0::2], c["premium"][1::2]
+    q = np.array([put[strikes == k][0] if k < 100.0 else call[strikes == k][0] if k > 100.0
+                  else 0.5 * (put[strikes == k][0] + call[strikes == k][0]) for k in used])
+    dk = np.r_[used[1] - used[0], (used[2:] - used[:-2]) / 2, used[-1] - used[-2]]
+    expected = 2.0 / (T * D) * np.sum(dk / used ** 2 * q)
+    assert out["variance"][0].as_py() == pytest.approx(expected, rel=1e-12)
 
 
 # ------------------------------------------------------------------ constant maturity
