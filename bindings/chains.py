@@ -80,7 +80,7 @@ def _group_spot(chain, fit):
     """Per group the spot (one value per group, or the group becomes
     inconsistent_inputs) and the implied yield -ln(D F / S) / T."""
     G = chain.groups
-    s = chain.spot[chain.order]
+    s = chain.spot[chain.order]          # grouped
     lo = np.full(G, np.nan)
     hi = np.full(G, np.nan)
     if len(s):
@@ -296,7 +296,7 @@ def constant_maturity_variance(variances, days=(30,), by=("underlying",), *,
         ok &= pc.fill_null(pc.equal(st.cast(pa.string()), "ok"), False).to_numpy(
             zero_copy_only=False)
     keys = [table[b] for b in by]
-    starts, order = group_rows(keys, n)
+    starts, order, _ = group_rows(keys, n)
     # within each group, by time (stable): one more sort of this small table
     grp = np.empty(n, np.int64)
     grp[order] = np.repeat(np.arange(len(starts) - 1), np.diff(starts))

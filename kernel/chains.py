@@ -6,8 +6,8 @@ Rows arrive grouped: ``starts`` (int64, groups + 1) cuts the row positions ``ord
 rows of group g in any order.  The bindings build both with one sort of the group keys
 (none when the input is already grouped); everything per group happens here, in parallel
 over blocks of groups, with the same work per group whatever the data: each group's rows
-are put in strike order inside its own segment (a heap sort, skipped when already in
-order), and each thread works in its own small work space (sized by the largest group,
+are put in strike order inside its own segment (a stable merge sort, skipped when
+already in order), and each thread works in its own small work space (sized by the largest group,
 allocated once per call), so no loop allocates and no group depends on another.
 
 Quotes: with ``quoted`` the quote of a row is its bid and ask (mid used, half-spread as its
@@ -139,54 +139,72 @@ _njit_sums = numba.njit(error_model="numpy", fastmath=set(FASTMATH) | {"reassoc"
 # ------------------------------------------------------------------ sorting helpers
 
 @_njit
-def _row_less(i, j, K, cp):
-    """Row i before row j: by strike (NaN last), calls before puts, then row position."""
-    ki, kj = K[i], K[j]
-    ni, nj = ki != ki, kj != kj
-    if ni != nj:
-        return nj
-    if not ni and ki != kj:
-        return ki < kj
-    if cp[i] != cp[j]:
-        return cp[i] > cp[j]
-    return i < j
+def _strike_key(k):
+    """The sort key of a strike: NaN sorts with +inf, last (both are unusable)."""
+    return k if k == k else np.inf
 
 
 @_njit
-def _sift_rows(idx, a, root, end, K, cp):
-    while True:
-        child = 2 * root + 1
-        if child >= end:
-            return
-        c = a + child
-        if child + 1 < end and _row_less(idx[c], idx[c + 1], K, cp):
-            c += 1
-            child += 1
-        r = a + root
-        if _row_less(idx[r], idx[c], K, cp):
-            idx[r], idx[c] = idx[c], idx[r]
-            root = child
-        else:
-            return
-
-
-@_njit
-def _sort_rows(idx, a, e, K, cp):
-    """Heap sort of the row positions idx[a:e] by (strike, call/put, position), in place;
-    nothing to do when they already are in that order."""
+def _sort_rows(idx, a, e, K, key, key2, tmp):
+    """Put the row positions idx[a:e] in strike order (NaN last), stably (rows of one
+    strike keep their order), in place; nothing to do when they already are.  A bottom-up
+    merge sort through the work arrays ``key``, ``key2`` (float) and ``tmp`` (int64), at
+    least e - a long: no allocation, no data-dependent worst case."""
+    m = e - a
     done = True
-    for i in range(a + 1, e):
-        if _row_less(idx[i], idx[i - 1], K, cp):
+    prev = -np.inf
+    for i in range(m):
+        k = _strike_key(K[idx[a + i]])
+        key[i] = k
+        if k < prev:
             done = False
-            break
+        prev = k
     if done:
         return
-    m = e - a
-    for root in range(m // 2 - 1, -1, -1):
-        _sift_rows(idx, a, root, m, K, cp)
-    for end in range(m - 1, 0, -1):
-        idx[a], idx[a + end] = idx[a + end], idx[a]
-        _sift_rows(idx, a, 0, end, K, cp)
+    src_k, dst_k = key, key2
+    src_i = idx[a:e]
+    dst_i = tmp
+    in_idx = True                   # src_i is the idx slice
+    width = 1
+    while width < m:
+        lo = 0
+        while lo < m:
+            mid = min(lo + width, m)
+            hi = min(lo + 2 * width, m)
+            i = lo
+            j = mid
+            o = lo
+            while i < mid and j < hi:
+                if src_k[j] < src_k[i]:
+                    dst_k[o] = src_k[j]
+                    dst_i[o] = src_i[j]
+                    j += 1
+                else:
+                    dst_k[o] = src_k[i]
+                    dst_i[o] = src_i[i]
+                    i += 1
+                o += 1
+            while i < mid:
+                dst_k[o] = src_k[i]
+                dst_i[o] = src_i[i]
+                i += 1
+                o += 1
+            while j < hi:
+                dst_k[o] = src_k[j]
+                dst_i[o] = src_i[j]
+                j += 1
+                o += 1
+            lo = hi
+        src_k, dst_k = dst_k, src_k
+        if in_idx:
+            src_i, dst_i = tmp, idx[a:e]
+        else:
+            src_i, dst_i = idx[a:e], tmp
+        in_idx = not in_idx
+        width *= 2
+    if not in_idx:                  # the sorted positions are in tmp
+        for i in range(m):
+            idx[a + i] = tmp[i]
 
 
 @_njit
@@ -287,26 +305,19 @@ def _group_value(idx, a, e, X):
 def _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v):
     """The group's parity pairs, written to x, y, v at [0, m): strike, C - P and the
     variance proxy h_C^2 + h_P^2 (NaN for premiums); returns m, or -1 when idx[a:e] is
-    not in strike order (calls before puts, NaN strikes last): sort, then call again.
-    At a strike with several usable calls (or puts) the first in row order is used."""
+    not in strike order (NaN strikes last): sort, then call again.  At a strike with
+    several usable calls (or puts) the first in row order is used."""
     m = 0
     prev_k = -np.inf
-    prev_c = 2
     c_mid = np.nan
     c_h = np.nan
     p_mid = np.nan
     p_h = np.nan
     for j in range(a, e):
         r = idx[j]
-        k = K[r]
+        k = _strike_key(K[r])
         c = cp[r]
-        if k != k:
-            # NaN strikes come last: the rest must be NaN too
-            for jj in range(j + 1, e):
-                if K[idx[jj]] == K[idx[jj]]:
-                    return -1
-            break
-        if k < prev_k or (k == prev_k and c > prev_c):
+        if k < prev_k:
             return -1
         if k != prev_k:
             if c_mid == c_mid and p_mid == p_mid:
@@ -317,7 +328,6 @@ def _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v):
             c_mid = np.nan
             p_mid = np.nan
             prev_k = k
-        prev_c = c
         if k > 0.0 and k < np.inf and abs(T[r]) < np.inf and \
                 (fit_discount or abs(D[r]) < np.inf):
             mid, h = _quote(r, bid, ask, quoted)
@@ -438,8 +448,8 @@ def _fit_group(x, y, sw, work, a, m, center, fixed_d, fit_discount):
 
 @_njit
 def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, min_pairs,
-                   rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out, n_out, res_out,
-                   st_out):
+                   rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out, d_out, n_out,
+                   res_out, st_out):
     nan = np.nan
     a = starts[g]
     e = starts[g + 1]
@@ -469,7 +479,7 @@ def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, 
             return
     m = _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v)
     if m < 0:
-        _sort_rows(idx, a, e, K, cp)
+        _sort_rows(idx, a, e, K, x, y, itmp)
         m = _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v)
     n_out[g] = m
     if m < max(min_pairs, 2 if fit_discount else 1):
@@ -506,35 +516,39 @@ def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, 
 
 @_njit
 def _forward_groups(a, e, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                    min_pairs, rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out, n_out,
-                    res_out, st_out):
+                    min_pairs, rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out, d_out,
+                    n_out, res_out, st_out):
     for g in range(a, e):
         _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                       min_pairs, rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out,
-                       n_out, res_out, st_out)
+                       min_pairs, rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out,
+                       d_out, n_out, res_out, st_out)
 
 
 @numba.njit(parallel=True, error_model="numpy", fastmath=set(FASTMATH), cache=True,
             nogil=True)
 def _forward_par(starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, min_pairs,
-                 rate_lo, rate_hi, scratch, t_out, f_out, d_out, n_out, res_out, st_out):
+                 rate_lo, rate_hi, scratch, iscratch, t_out, f_out, d_out, n_out, res_out,
+                 st_out):
     n_groups = starts.shape[0] - 1
     for blk in prange((n_groups + GROUP_BLOCK - 1) // GROUP_BLOCK):
         a = blk * GROUP_BLOCK
         e = min(n_groups, a + GROUP_BLOCK)
-        w = scratch[numba.get_thread_id()]      # this thread's work space
+        tid = numba.get_thread_id()             # this thread's work space
+        w = scratch[tid]
         _forward_groups(a, e, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                        min_pairs, rate_lo, rate_hi, w[0], w[1], w[2], w[3], t_out, f_out,
-                        d_out, n_out, res_out, st_out)
+                        min_pairs, rate_lo, rate_hi, w[0], w[1], w[2], w[3], iscratch[tid],
+                        t_out, f_out, d_out, n_out, res_out, st_out)
 
 
 # ------------------------------------------------------------------ argument checks
 
 def _scratch(starts, k):
-    """Work space: k arrays of the largest group's size per thread (a thread works on one
-    group at a time, so its arrays stay in cache; nothing is allocated in the loops)."""
-    largest = int(np.max(np.diff(starts))) if starts.shape[0] > 1 else 0
-    return np.empty((numba.config.NUMBA_NUM_THREADS, k, max(largest, 1)))
+    """Work space: k float arrays and one int64 array of the largest group's size per
+    thread (a thread works on one group at a time, so its arrays stay in cache; nothing
+    is allocated in the loops)."""
+    largest = max(int(np.max(np.diff(starts))) if starts.shape[0] > 1 else 0, 1)
+    threads = numba.config.NUMBA_NUM_THREADS
+    return np.empty((threads, k, largest)), np.empty((threads, largest), np.int64)
 
 
 def _ro(a, dtype):
@@ -598,7 +612,7 @@ def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pair
         raise ValueError("min_pairs must be >= 1")
     lo, hi = (float(z) for z in rate_range)
     G = starts.shape[0] - 1
-    scratch = _scratch(starts, 4)
+    scratch, iscratch = _scratch(starts, 4)
     out = {"T": np.empty(G), "forward": np.empty(G), "discount": np.empty(G),
            "pairs_used": np.empty(G, np.int64), "residual": np.empty(G),
            "status": np.empty(G, np.int8)}
@@ -608,9 +622,9 @@ def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pair
             out["status"])
     if G <= GROUP_BLOCK:
         w = scratch[0]
-        _forward_groups(0, G, *head, w[0], w[1], w[2], w[3], *tail)
+        _forward_groups(0, G, *head, w[0], w[1], w[2], w[3], iscratch[0], *tail)
     else:
-        _forward_par(*head, scratch, *tail)
+        _forward_par(*head, scratch, iscratch, *tail)
     if idx_out is not None:
         idx_out["order"] = idx
     return out
@@ -653,7 +667,7 @@ def _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm):
 
 @_njit
 def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks, cm,
-                    pm, var_out, n_out, st_out):
+                    pm, itmp, var_out, n_out, st_out):
     nan = np.nan
     var_out[g] = nan
     n_out[g] = 0
@@ -665,7 +679,7 @@ def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
     f = F[g]
     d = D[g]
     t = Tg[g]
-    _sort_rows(idx, a, e, K, cp)
+    _sort_rows(idx, a, e, K, ks, cm, itmp)
     m = _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm)
     # K0: the largest strike at or below the forward
     i0 = -1
@@ -736,23 +750,24 @@ def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
 
 @_njit
 def _variance_groups(a, e, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks,
-                     cm, pm, var_out, n_out, st_out):
+                     cm, pm, itmp, var_out, n_out, st_out):
     for g in range(a, e):
         _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks, cm,
-                        pm, var_out, n_out, st_out)
+                        pm, itmp, var_out, n_out, st_out)
 
 
 @numba.njit(parallel=True, error_model="numpy", fastmath=set(FASTMATH), cache=True,
             nogil=True)
 def _variance_par(starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, scratch,
-                  var_out, n_out, st_out):
+                  iscratch, var_out, n_out, st_out):
     n_groups = starts.shape[0] - 1
     for blk in prange((n_groups + GROUP_BLOCK - 1) // GROUP_BLOCK):
         a = blk * GROUP_BLOCK
         e = min(n_groups, a + GROUP_BLOCK)
-        w = scratch[numba.get_thread_id()]      # this thread's work space
+        tid = numba.get_thread_id()             # this thread's work space
+        w = scratch[tid]
         _variance_groups(a, e, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
-                         w[0], w[1], w[2], var_out, n_out, st_out)
+                         w[0], w[1], w[2], iscratch[tid], var_out, n_out, st_out)
 
 
 def strip_variance(starts, order, K, cp, bid, ask, T, F, D, Tg, status_in=None, *,
@@ -772,16 +787,16 @@ def strip_variance(starts, order, K, cp, bid, ask, T, F, D, Tg, status_in=None, 
     for name, z in (("F", F), ("D", D), ("Tg", Tg), ("status_in", st_in)):
         if z.shape != (G,):
             raise ValueError(f"{name} must have one value per group, shape {(G,)}")
-    scratch = _scratch(starts, 3)
+    scratch, iscratch = _scratch(starts, 3)
     out = {"variance": np.empty(G), "strikes_used": np.empty(G, np.int64),
            "status": np.empty(G, np.int8)}
     head = (starts, idx, K, cp, bid, ask, T, bool(quoted), F, D, Tg, st_in)
     tail = (out["variance"], out["strikes_used"], out["status"])
     if G <= GROUP_BLOCK:
         w = scratch[0]
-        _variance_groups(0, G, *head, w[0], w[1], w[2], *tail)
+        _variance_groups(0, G, *head, w[0], w[1], w[2], iscratch[0], *tail)
     else:
-        _variance_par(*head, scratch, *tail)
+        _variance_par(*head, scratch, iscratch, *tail)
     return out
 
 
@@ -968,3 +983,32 @@ def group_inputs(starts, order, T, D, F):
     _group_inputs(starts, idx, T, D, F, out["T"], out["discount"], out["forward"],
                   out["status"])
     return out
+
+
+@_njit
+def _count_groups(codes, n_codes, counts, order):
+    for i in range(codes.shape[0]):
+        counts[codes[i] + 1] += 1
+    for c in range(n_codes):
+        counts[c + 1] += counts[c]
+    for i in range(codes.shape[0]):        # stable: input order within a code
+        c = codes[i]
+        order[counts[c]] = i
+        counts[c] += 1
+
+
+def counting_groups(codes, n_codes):
+    """(starts, order) of rows grouped by dense int64 ``codes`` in [0, n_codes), groups in
+    code order (empty codes left out), rows of a group in input order: a counting sort,
+    linear in the rows."""
+    codes = _ro(codes, np.int64)
+    if codes.size and (codes.min() < 0 or codes.max() >= n_codes):
+        raise ValueError("codes must lie in [0, n_codes)")
+    counts = np.zeros(n_codes + 1, np.int64)
+    order = np.empty(codes.shape[0], np.int64)
+    _count_groups(codes, n_codes, counts, order)
+    # counts[c] is now the end of code c's rows: the starts are the distinct ends
+    ends = counts[:n_codes]
+    sizes = np.diff(np.concatenate(([0], ends)))
+    starts = np.concatenate(([0], ends[sizes > 0])).astype(np.int64)
+    return starts, order

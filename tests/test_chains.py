@@ -483,17 +483,19 @@ def test_median_by_selection_against_numpy():
         assert kchains._median(v.copy(), 0, m) == ref
 
 
-def test_heap_sort_of_rows_against_numpy_lexsort():
-    # reference: numpy.lexsort on (row, -call/put, strike), NaN strikes last
+def test_merge_sort_of_rows_against_numpy_stable_sort():
+    # reference: numpy's stable argsort by strike (NaN last): rows of one strike keep
+    # their order
     rng = np.random.default_rng(1)
-    K = rng.integers(0, 30, 400).astype(float)
-    K[rng.integers(0, 400, 20)] = np.nan
-    cp = rng.choice(np.array([1, -1], np.int8), 400)
-    idx = rng.permutation(400).astype(np.int64)
-    ref = np.lexsort((np.arange(400), -cp, K))
-    got = np.sort(idx)
-    kchains._sort_rows(got, 0, 400, K, cp)
-    assert np.array_equal(got, ref)
+    for n in (1, 2, 7, 400, 1000):
+        K = rng.integers(0, 30, n).astype(float)
+        K[rng.integers(0, n, n // 20)] = np.nan
+        idx = rng.permutation(n).astype(np.int64)
+        key = np.where(np.isnan(K[idx]), np.inf, K[idx])
+        ref = idx[np.argsort(key, kind="stable")]
+        got = idx.copy()
+        kchains._sort_rows(got, 0, n, K, np.empty(n), np.empty(n), np.empty(n, np.int64))
+        assert np.array_equal(got, ref)
 
 
 def test_readme_lists_every_group_status_in_order():
@@ -505,3 +507,18 @@ def test_readme_lists_every_group_status_in_order():
                       text.split("### Chain outputs and group statuses")[1].split("\n### ")[0],
                       flags=re.M)
     assert [(int(c), w) for c, w in rows] == list(enumerate(kchains.NAMES))
+
+
+def test_many_key_combinations_group_by_sorting_and_keep_every_group():
+    # more key combinations than counting can hold: the sort path; every row its own group
+    rng = np.random.default_rng(5)
+    n = 300
+    t = pa.table({"a": rng.permutation(n).astype(float), "b": rng.permutation(n) * 1.5,
+                  "strike": np.full(n, 100.0), "is_call": rng.random(n) < 0.5,
+                  "premium": np.full(n, 1.0), "expiry_years": np.full(n, 0.5)})
+    out = volsweep.implied_forwards(t, by=("a", "b"))
+    assert out.num_rows == n
+    assert out["a"].to_pylist() == sorted(t["a"].to_pylist())
+    assert set(out["status"].to_pylist()) == {"too_few_pairs"}
+    assert volsweep.implied_forwards(t.take(pa.array(rng.permutation(n))),
+                                     by=("a", "b")).equals(out)
