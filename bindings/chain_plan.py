@@ -171,8 +171,9 @@ class ChainPlan:
 
 @dataclass
 class Chain:
-    """The input read for a chain operation: per-row arrays in input order, the group
-    key columns and the groups."""
+    """The input read for a chain operation: per-row arrays in the kernels' layout (the
+    input order when the rows already come grouped, else gathered into group order), the
+    group key columns (input order) and the groups."""
 
     n: int
     K: np.ndarray
@@ -183,9 +184,10 @@ class Chain:
     D: np.ndarray | None
     spot: np.ndarray | None
     forward: np.ndarray | None
-    keys: list               # the by columns, as ChunkedArrays
+    keys: list               # the by columns, as ChunkedArrays, input order
     starts: np.ndarray       # group starts into order
-    order: np.ndarray        # row positions, grouped
+    order: np.ndarray        # positions in the arrays above, grouped (kernels sort within)
+    rows: np.ndarray | None  # input row of each array position (None: the same)
     batches: list | None     # the input batches (kept for attach)
     schema: pa.Schema
 
@@ -193,17 +195,34 @@ class Chain:
     def groups(self) -> int:
         return len(self.starts) - 1
 
+    def _input_rows(self, positions):
+        return positions if self.rows is None else self.rows[positions]
+
     def key_table(self) -> dict:
-        """The by columns' values of each group (from its first row)."""
-        first = self.order[self.starts[:-1]]
+        """The by columns' values of each group (from one of its rows)."""
+        first = self._input_rows(self.order[self.starts[:-1]])
         return {name: col.take(pa.array(first, pa.int64()))
                 for name, col in self.keys}
 
     def row_group(self) -> np.ndarray:
         """The group of every row, in input order."""
         g = np.empty(self.n, np.int64)
-        g[self.order] = np.repeat(np.arange(self.groups, dtype=np.int64), np.diff(self.starts))
+        g[self._input_rows(self.order)] = np.repeat(np.arange(self.groups, dtype=np.int64),
+                                                    np.diff(self.starts))
         return g
+
+
+def _call_put(plan: ColumnPlan, batch) -> np.ndarray:
+    """+1 call, -1 put, 0 missing; a plain bool column without nulls straight from its
+    bitmap (the column plan's general path otherwise)."""
+    col = batch.column(plan.index["is_call"])
+    if col.type == pa.bool_() and not col.null_count and len(col):
+        bits = np.unpackbits(np.frombuffer(col.buffers()[1], np.uint8), bitorder="little",
+                             count=col.offset + len(col))[col.offset:].view(np.int8)
+        cp = np.left_shift(bits, 1)
+        cp -= 1
+        return cp
+    return plan.call_put(batch)
 
 
 def _cat(parts, dtype=np.float64):
@@ -225,7 +244,7 @@ def read_chain(plan: ChainPlan, batches, schema, *, keep_batches=False, progress
         T = c.expiry_years(batch)
         parts["T"].append(T)
         parts["K"].append(c.floats(batch, "strike"))
-        parts["cp"].append(c.call_put(batch))
+        parts["cp"].append(_call_put(c, batch))
         if plan.quoted:
             parts["bid"].append(c.floats(batch, "bid"))
             parts["ask"].append(c.floats(batch, "ask"))
@@ -244,25 +263,40 @@ def read_chain(plan: ChainPlan, batches, schema, *, keep_batches=False, progress
         n += batch.num_rows
         if progress is not None:
             progress.update(batch.num_rows)
-    arr = {k: _cat(v, np.int8 if k == "cp" else np.float64) for k, v in parts.items()}
-    bid = arr["bid"]
-    ask = arr["ask"] if plan.quoted else bid
+    arr = {k: _cat(v, np.int8 if k == "cp" else np.float64) for k, v in parts.items()
+           if v}
     key_cols = [(name, pa.chunked_array(k, type=schema.field(name).type))
                 for name, k in zip(plan.by, keys)]
-    starts, order = group_rows([col for _, col in key_cols], n)
+    starts, order, grouped = group_rows([col for _, col in key_cols], n)
+    rows = None
+    if not grouped:
+        # rows in group order, so that each group's rows lie together in memory
+        arr = {k: v[order] for k, v in arr.items()}
+        rows = order
+        order = np.arange(n, dtype=np.int64)
+    arr.setdefault("K", np.empty(0))
+    arr.setdefault("cp", np.empty(0, np.int8))
+    arr.setdefault("bid", np.empty(0))
+    arr.setdefault("T", np.empty(0))
+    bid = arr["bid"]
+    ask = arr["ask"] if plan.quoted and "ask" in arr else bid
     return Chain(n, arr["K"], arr["cp"], bid, ask, arr["T"],
-                 arr["D"] if plan.given_discount else None,
-                 arr["spot"] if plan.spot else None,
-                 arr["forward"] if plan.forward else None,
-                 key_cols, starts, order, kept, schema)
+                 arr.get("D", np.empty(0)) if plan.given_discount else None,
+                 arr.get("spot", np.empty(0)) if plan.spot else None,
+                 arr.get("forward", np.empty(0)) if plan.forward else None,
+                 key_cols, starts, order, rows, kept, schema)
 
 
 # ------------------------------------------------------------------ grouping
 
 def _ranked(values: pa.Array, indices: np.ndarray, null_rows: np.ndarray | None):
     """int64 order codes of dictionary ``indices`` into ``values`` (ascending; nulls last)."""
-    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(zero_copy_only=False).astype(np.int64)
-    codes = rank[indices]
+    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(
+        zero_copy_only=False).astype(np.int64)
+    if np.array_equal(rank, np.arange(1, len(rank) + 1)):
+        codes = indices.astype(np.int64)       # a sorted dictionary: the indices order
+    else:
+        codes = rank[indices]
     if null_rows is not None:
         codes[null_rows] = _INT64_MAX
     return codes
@@ -276,13 +310,15 @@ def _order_key(col: pa.ChunkedArray) -> np.ndarray:
     if n == 0:
         return np.empty(0, np.int64)
     if pa.types.is_dictionary(t):
-        col = col.unify_dictionaries()
+        if col.num_chunks > 1:
+            col = col.unify_dictionaries()
         values = col.chunk(0).dictionary if col.num_chunks else pa.array([], t.value_type)
-        idx = pc.fill_null(pa.chunked_array([ch.indices for ch in col.chunks]).cast(pa.int64()),
-                           0).to_numpy()
+        indices = pa.chunked_array([ch.indices for ch in col.chunks])
         nulls = None
         if col.null_count:
             nulls = ~pc.is_valid(col).to_numpy(zero_copy_only=False)
+            indices = pc.fill_null(indices, 0)
+        idx = indices.to_numpy()                # any integer type indexes the ranks
         if pa.types.is_dictionary(values.type):
             raise TypeError("a by= column of nested dictionaries is not supported")
         return _ranked(values, idx, nulls)
@@ -310,18 +346,50 @@ def _order_key(col: pa.ChunkedArray) -> np.ndarray:
 
 
 def group_rows(key_cols, n: int):
-    """(starts, order): the rows grouped by the key columns, groups in ascending key
-    order (nulls last), rows of a group in input order.  No sort when the rows already
-    come grouped in that order (as a snapshot sorted by underlying and expiry does)."""
+    """(starts, order, grouped): the rows grouped by the key columns, groups in ascending
+    key order (nulls last), rows of a group in input order; ``grouped``: the rows already
+    came grouped in that order (as a snapshot sorted by underlying and expiry does; then
+    ``order`` is the identity and nothing was sorted).  Otherwise each key is turned into
+    dense ranks and the rows are grouped by a counting sort on the combined rank (one
+    ``np.lexsort`` when the combinations are too many for counting)."""
     if n == 0:
-        return np.zeros(1, np.int64), np.empty(0, np.int64)
-    keys = np.stack([_order_key(c) for c in key_cols])
+        return np.zeros(1, np.int64), np.empty(0, np.int64), True
+    keys = [_order_key(c) for c in key_cols]
     starts = _kchains.segment(keys)
     if starts is not None:
-        return starts, np.arange(n, dtype=np.int64)
-    order = np.lexsort(keys[::-1])               # stable: input order within a group
-    starts = _kchains.segment(keys[:, order])
-    return starts, order.astype(np.int64, copy=False)
+        return starts, np.arange(n, dtype=np.int64), True
+    code = np.zeros(n, np.int64)
+    n_codes = 1
+    for col in key_cols:
+        rank, size = _dense_key(col)
+        if n_codes * size > max(8 * n, 1 << 20):
+            order = np.lexsort(keys[::-1])          # stable: input order within a group
+            starts = _kchains.segment([k[order] for k in keys])
+            return starts, order.astype(np.int64, copy=False), False
+        code *= size
+        code += rank
+        n_codes *= size
+    starts, order = _kchains.counting_groups(code, n_codes)
+    return starts, order, False
+
+
+def _dense_key(col: pa.ChunkedArray):
+    """(codes 0..size-1 in the column's ascending order, nulls last; size)."""
+    if not pa.types.is_dictionary(col.type):
+        col = col.dictionary_encode()
+    col = col.unify_dictionaries() if col.num_chunks > 1 else col
+    values = col.chunk(0).dictionary if col.num_chunks else pa.array([], col.type.value_type)
+    size = len(values) + 1                       # + the null code
+    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(
+        zero_copy_only=False).astype(np.int64) - 1
+    indices = pa.chunked_array([ch.indices for ch in col.chunks])
+    if col.null_count:
+        nulls = ~pc.is_valid(col).to_numpy(zero_copy_only=False)
+        codes = rank[pc.fill_null(indices, 0).to_numpy()]
+        codes[nulls] = size - 1
+    else:
+        codes = rank[indices.to_numpy()]
+    return codes, size
 
 
 def read_input(data):

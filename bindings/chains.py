@@ -26,7 +26,6 @@ import pyarrow.compute as pc
 from volsweep.kernel import chains as _kchains
 
 from .chain_plan import ChainPlan, _by_names, group_rows, read_chain, read_input
-from ._output import new_array
 from .loader import launch_guard
 
 GROUP_STATUS = pa.array(_kchains.NAMES, type=pa.string())
@@ -74,14 +73,14 @@ def _fit(chain, plan, min_pairs, rate_lo, rate_hi, sorted_out=None):
         return _kchains.forwards(chain.starts, chain.order, chain.K, chain.cp, chain.bid,
                                  chain.ask, chain.T, chain.D, quoted=plan.quoted,
                                  min_pairs=min_pairs, rate_range=(rate_lo, rate_hi),
-                                 idx_out=sorted_out, scratch=new_array((4, max(chain.n, 1))))
+                                 idx_out=sorted_out, own_order=True)
 
 
 def _group_spot(chain, fit):
     """Per group the spot (one value per group, or the group becomes
     inconsistent_inputs) and the implied yield -ln(D F / S) / T."""
     G = chain.groups
-    s = chain.spot[chain.order]
+    s = chain.spot[chain.order]          # grouped
     lo = np.full(G, np.nan)
     hi = np.full(G, np.nan)
     if len(s):
@@ -211,8 +210,7 @@ def _variance(chain, plan, forwards, min_pairs=3, rate_range=(-0.2, 1.0)):
     with launch_guard():
         var = _kchains.strip_variance(chain.starts, chain.order, chain.K, chain.cp,
                                       chain.bid, chain.ask, chain.T, F, D, T, st,
-                                      quoted=plan.quoted,
-                                      scratch=new_array((3, max(chain.n, 1))))
+                                      quoted=plan.quoted, own_order=True)
     return T, F, D, var
 
 
@@ -298,7 +296,7 @@ def constant_maturity_variance(variances, days=(30,), by=("underlying",), *,
         ok &= pc.fill_null(pc.equal(st.cast(pa.string()), "ok"), False).to_numpy(
             zero_copy_only=False)
     keys = [table[b] for b in by]
-    starts, order = group_rows(keys, n)
+    starts, order, _ = group_rows(keys, n)
     # within each group, by time (stable): one more sort of this small table
     grp = np.empty(n, np.int64)
     grp[order] = np.repeat(np.arange(len(starts) - 1), np.diff(starts))

@@ -6,8 +6,9 @@ Rows arrive grouped: ``starts`` (int64, groups + 1) cuts the row positions ``ord
 rows of group g in any order.  The bindings build both with one sort of the group keys
 (none when the input is already grouped); everything per group happens here, in parallel
 over blocks of groups, with the same work per group whatever the data: each group's rows
-are put in strike order inside its own segment (a heap sort, skipped when already in
-order), so no kernel allocates and no group depends on another.
+are put in strike order inside its own segment (a stable merge sort, skipped when
+already in order), and each thread works in its own small work space (sized by the largest group,
+allocated once per call), so no loop allocates and no group depends on another.
 
 Quotes: with ``quoted`` the quote of a row is its bid and ask (mid used, half-spread as its
 uncertainty; a row whose bid is not positive, whose ask is missing or below the bid is left
@@ -127,65 +128,88 @@ _REL_TIME = 1e-12      # rows of a group agree on T, D, F within this relative d
 GROUP_BLOCK = 16       # groups per parallel task
 
 _njit = numba.njit(error_model="numpy", fastmath=set(FASTMATH), cache=True, nogil=True)
+# The weighted sums of the reweighting steps may be added in any order (``reassoc``), so
+# that LLVM can vectorise them: sums of a few hundred terms move by a few ulps, far below
+# the quotes' noise and the 1e-9 the exact-price tests ask.  No ``nnan``/``ninf``: the
+# NaN tests that decide the statuses must stay.
+_njit_sums = numba.njit(error_model="numpy", fastmath=set(FASTMATH) | {"reassoc", "nsz"},
+                        cache=True, nogil=True)
 
 
 # ------------------------------------------------------------------ sorting helpers
 
 @_njit
-def _row_less(i, j, K, cp):
-    """Row i before row j: by strike (NaN last), calls before puts, then row position."""
-    ki, kj = K[i], K[j]
-    ni, nj = ki != ki, kj != kj
-    if ni != nj:
-        return nj
-    if not ni and ki != kj:
-        return ki < kj
-    if cp[i] != cp[j]:
-        return cp[i] > cp[j]
-    return i < j
+def _strike_key(k):
+    """The sort key of a strike: NaN sorts with +inf, last (both are unusable)."""
+    return k if k == k else np.inf
 
 
 @_njit
-def _sift_rows(idx, a, root, end, K, cp):
-    while True:
-        child = 2 * root + 1
-        if child >= end:
-            return
-        c = a + child
-        if child + 1 < end and _row_less(idx[c], idx[c + 1], K, cp):
-            c += 1
-            child += 1
-        r = a + root
-        if _row_less(idx[r], idx[c], K, cp):
-            idx[r], idx[c] = idx[c], idx[r]
-            root = child
-        else:
-            return
-
-
-@_njit
-def _sort_rows(idx, a, e, K, cp):
-    """Heap sort of the row positions idx[a:e] by (strike, call/put, position), in place;
-    nothing to do when they already are in that order."""
+def _sort_rows(idx, a, e, K, key, key2, tmp):
+    """Put the row positions idx[a:e] in strike order (NaN last), stably (rows of one
+    strike keep their order), in place; nothing to do when they already are.  A bottom-up
+    merge sort through the work arrays ``key``, ``key2`` (float) and ``tmp`` (int64), at
+    least e - a long: no allocation, no data-dependent worst case."""
+    m = e - a
     done = True
-    for i in range(a + 1, e):
-        if _row_less(idx[i], idx[i - 1], K, cp):
+    prev = -np.inf
+    for i in range(m):
+        k = _strike_key(K[idx[a + i]])
+        key[i] = k
+        if k < prev:
             done = False
-            break
+        prev = k
     if done:
         return
-    m = e - a
-    for root in range(m // 2 - 1, -1, -1):
-        _sift_rows(idx, a, root, m, K, cp)
-    for end in range(m - 1, 0, -1):
-        idx[a], idx[a + end] = idx[a + end], idx[a]
-        _sift_rows(idx, a, 0, end, K, cp)
+    src_k, dst_k = key, key2
+    src_i = idx[a:e]
+    dst_i = tmp
+    in_idx = True                   # src_i is the idx slice
+    width = 1
+    while width < m:
+        lo = 0
+        while lo < m:
+            mid = min(lo + width, m)
+            hi = min(lo + 2 * width, m)
+            i = lo
+            j = mid
+            o = lo
+            while i < mid and j < hi:
+                if src_k[j] < src_k[i]:
+                    dst_k[o] = src_k[j]
+                    dst_i[o] = src_i[j]
+                    j += 1
+                else:
+                    dst_k[o] = src_k[i]
+                    dst_i[o] = src_i[i]
+                    i += 1
+                o += 1
+            while i < mid:
+                dst_k[o] = src_k[i]
+                dst_i[o] = src_i[i]
+                i += 1
+                o += 1
+            while j < hi:
+                dst_k[o] = src_k[j]
+                dst_i[o] = src_i[j]
+                j += 1
+                o += 1
+            lo = hi
+        src_k, dst_k = dst_k, src_k
+        if in_idx:
+            src_i, dst_i = tmp, idx[a:e]
+        else:
+            src_i, dst_i = idx[a:e], tmp
+        in_idx = not in_idx
+        width *= 2
+    if not in_idx:                  # the sorted positions are in tmp
+        for i in range(m):
+            idx[a + i] = tmp[i]
 
 
 @_njit
 def _median(v, a, m):
-    """Median of v[a:a+m] (m >= 1), by Hoare's selection (FIND, 1961) with a
-    median-of-three pivot: linear time on average; v[a:a+m] is reordered."""
+    """Median of v[a:a+m] (m >= 1; v[a:a+m] is reordered)."""
     h = m // 2
     hi_mid = _select(v, a, m, h)
     if m % 2:
@@ -193,45 +217,52 @@ def _median(v, a, m):
     # after the selection every element before position a+h is <= v[a+h]
     lo_mid = v[a]
     for i in range(a + 1, a + h):
-        if v[i] > lo_mid:
-            lo_mid = v[i]
+        lo_mid = max(lo_mid, v[i])
     return 0.5 * (lo_mid + hi_mid)
 
 
 @_njit
 def _select(v, a, m, k):
     """The k-th smallest (0-based) of v[a:a+m], left at v[a+k] with no larger element
-    before it and no smaller one after it."""
+    before it and no smaller one after it.
+
+    Hoare's selection (FIND, 1961) with a median-of-three pivot, each round partitioning
+    three ways (below, equal to, above the pivot) by two passes of Lomuto's scheme
+    written without branches (a swap every step, the boundary moved by the comparison):
+    on data that differ from group to group the branches of the classic partition are
+    mispredicted about half the time, and they cost more than the swaps.  Linear time on
+    average; ties cost nothing extra.
+    """
     lo = a
-    hi = a + m - 1
+    hi = a + m
     kk = a + k
-    while hi > lo:
-        mid = (lo + hi) >> 1
-        x, y, z = v[lo], v[mid], v[hi]
-        if x > y:
-            x, y = y, x
-        if y > z:
-            y = z
-            if x > y:
-                y = x
-        pivot = y
-        i = lo
-        j = hi
-        while i <= j:
-            while v[i] < pivot:
-                i += 1
-            while v[j] > pivot:
-                j -= 1
-            if i <= j:
-                v[i], v[j] = v[j], v[i]
-                i += 1
-                j -= 1
-        if kk <= j:
-            hi = j
-        elif kk >= i:
-            lo = i
-        else:
-            break
+    while hi - lo > 2:
+        x = v[lo]
+        y = v[(lo + hi) >> 1]
+        z = v[hi - 1]
+        pivot = max(min(x, y), min(max(x, y), z))
+        s = lo
+        for i in range(lo, hi):
+            t = v[i]
+            v[i] = v[s]
+            v[s] = t
+            s += t < pivot
+        if kk < s:
+            hi = s
+            continue
+        s2 = s
+        for i in range(s, hi):
+            t = v[i]
+            v[i] = v[s2]
+            v[s2] = t
+            s2 += t <= pivot
+        if kk < s2:
+            return v[kk]
+        if s2 == lo:              # no progress: only NaNs are left
+            return v[kk]
+        lo = s2
+    if hi - lo == 2 and v[lo + 1] < v[lo]:
+        v[lo], v[lo + 1] = v[lo + 1], v[lo]
     return v[kk]
 
 
@@ -272,39 +303,31 @@ def _group_value(idx, a, e, X):
 
 @_njit
 def _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v):
-    """The group's parity pairs, written to x, y, v at [a, a + m): strike, C - P and the
+    """The group's parity pairs, written to x, y, v at [0, m): strike, C - P and the
     variance proxy h_C^2 + h_P^2 (NaN for premiums); returns m, or -1 when idx[a:e] is
-    not in strike order (calls before puts, NaN strikes last): sort, then call again.
-    At a strike with several usable calls (or puts) the first in row order is used."""
+    not in strike order (NaN strikes last): sort, then call again.  At a strike with
+    several usable calls (or puts) the first in row order is used."""
     m = 0
     prev_k = -np.inf
-    prev_c = 2
     c_mid = np.nan
     c_h = np.nan
     p_mid = np.nan
     p_h = np.nan
     for j in range(a, e):
         r = idx[j]
-        k = K[r]
+        k = _strike_key(K[r])
         c = cp[r]
-        if k != k:
-            # NaN strikes come last: the rest must be NaN too
-            for jj in range(j + 1, e):
-                if K[idx[jj]] == K[idx[jj]]:
-                    return -1
-            break
-        if k < prev_k or (k == prev_k and c > prev_c):
+        if k < prev_k:
             return -1
         if k != prev_k:
             if c_mid == c_mid and p_mid == p_mid:
-                x[a + m] = prev_k
-                y[a + m] = c_mid - p_mid
-                v[a + m] = c_h * c_h + p_h * p_h
+                x[m] = prev_k
+                y[m] = c_mid - p_mid
+                v[m] = c_h * c_h + p_h * p_h
                 m += 1
             c_mid = np.nan
             p_mid = np.nan
             prev_k = k
-        prev_c = c
         if k > 0.0 and k < np.inf and abs(T[r]) < np.inf and \
                 (fit_discount or abs(D[r]) < np.inf):
             mid, h = _quote(r, bid, ask, quoted)
@@ -316,9 +339,9 @@ def _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v):
                     p_mid = mid
                     p_h = h
     if c_mid == c_mid and p_mid == p_mid:
-        x[a + m] = prev_k
-        y[a + m] = c_mid - p_mid
-        v[a + m] = c_h * c_h + p_h * p_h
+        x[m] = prev_k
+        y[m] = c_mid - p_mid
+        v[m] = c_h * c_h + p_h * p_h
         m += 1
     return m
 
@@ -356,7 +379,7 @@ def _scale(x, y, sw, a, m, icpt, slope, work, floor):
     return max(s, floor)
 
 
-@_njit
+@_njit_sums
 def _fit_group(x, y, sw, work, a, m, center, fixed_d, fit_discount):
     """Robust fit of y = icpt + slope * x over [a, a + m) (x: the strike minus
     ``center``; ``sw``: square roots of the spread weights); the slope fixed at
@@ -425,8 +448,8 @@ def _fit_group(x, y, sw, work, a, m, center, fixed_d, fit_discount):
 
 @_njit
 def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, min_pairs,
-                   rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out, n_out, res_out,
-                   st_out):
+                   rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out, d_out, n_out,
+                   res_out, st_out):
     nan = np.nan
     a = starts[g]
     e = starts[g + 1]
@@ -456,17 +479,17 @@ def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, 
             return
     m = _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v)
     if m < 0:
-        _sort_rows(idx, a, e, K, cp)
+        _sort_rows(idx, a, e, K, x, y, itmp)
         m = _pairs(idx, a, e, K, cp, bid, ask, T, D, quoted, fit_discount, x, y, v)
     n_out[g] = m
     if m < max(min_pairs, 2 if fit_discount else 1):
         st_out[g] = TOO_FEW_PAIRS
         return
-    _weights(v, a, m, quoted)
-    center = x[a + m // 2]
-    for i in range(a, a + m):
+    _weights(v, 0, m, quoted)
+    center = x[m // 2]
+    for i in range(m):
         x[i] -= center
-    icpt, slope, used, res = _fit_group(x, y, v, work, a, m, center, d, fit_discount)
+    icpt, slope, used, res = _fit_group(x, y, v, work, 0, m, center, d, fit_discount)
     n_out[g] = used
     if not slope == slope or used < max(min_pairs, 2 if fit_discount else 1):
         st_out[g] = TOO_FEW_PAIRS
@@ -493,41 +516,39 @@ def _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, 
 
 @_njit
 def _forward_groups(a, e, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                    min_pairs, rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out, n_out,
-                    res_out, st_out):
+                    min_pairs, rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out, d_out,
+                    n_out, res_out, st_out):
     for g in range(a, e):
         _forward_group(g, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                       min_pairs, rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out,
-                       n_out, res_out, st_out)
+                       min_pairs, rate_lo, rate_hi, x, y, v, work, itmp, t_out, f_out,
+                       d_out, n_out, res_out, st_out)
 
 
 @numba.njit(parallel=True, error_model="numpy", fastmath=set(FASTMATH), cache=True,
             nogil=True)
 def _forward_par(starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount, min_pairs,
-                 rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out, n_out, res_out,
+                 rate_lo, rate_hi, scratch, iscratch, t_out, f_out, d_out, n_out, res_out,
                  st_out):
     n_groups = starts.shape[0] - 1
     for blk in prange((n_groups + GROUP_BLOCK - 1) // GROUP_BLOCK):
         a = blk * GROUP_BLOCK
         e = min(n_groups, a + GROUP_BLOCK)
+        tid = numba.get_thread_id()             # this thread's work space
+        w = scratch[tid]
         _forward_groups(a, e, starts, idx, K, cp, bid, ask, T, D, quoted, fit_discount,
-                        min_pairs, rate_lo, rate_hi, x, y, v, work, t_out, f_out, d_out,
-                        n_out, res_out, st_out)
+                        min_pairs, rate_lo, rate_hi, w[0], w[1], w[2], w[3], iscratch[tid],
+                        t_out, f_out, d_out, n_out, res_out, st_out)
 
 
 # ------------------------------------------------------------------ argument checks
 
-def _scratch(scratch, k, m):
-    """k work arrays of length m (at least 1), rows of ``scratch`` when given."""
-    m = max(m, 1)
-    if scratch is None:
-        scratch = np.empty((k, m))
-    if not isinstance(scratch, np.ndarray) or scratch.dtype != np.float64 or \
-            scratch.ndim != 2 or scratch.shape[0] < k or scratch.shape[1] < m or \
-            not scratch.flags.c_contiguous or not scratch.flags.writeable:
-        raise ValueError(f"scratch must be a writable C-contiguous float64 array of shape "
-                         f"({k}, {m}) or larger")
-    return tuple(scratch[j, :m] for j in range(k))
+def _scratch(starts, k):
+    """Work space: k float arrays and one int64 array of the largest group's size per
+    thread (a thread works on one group at a time, so its arrays stay in cache; nothing
+    is allocated in the loops)."""
+    largest = max(int(np.max(np.diff(starts))) if starts.shape[0] > 1 else 0, 1)
+    threads = numba.config.NUMBA_NUM_THREADS
+    return np.empty((threads, k, largest)), np.empty((threads, largest), np.int64)
 
 
 def _ro(a, dtype):
@@ -538,7 +559,7 @@ def _ro(a, dtype):
     return a
 
 
-def _rows_args(starts, order, K, cp, bid, ask, T):
+def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     starts = _ro(starts, np.int64)
     K, bid, ask, T = (_ro(z, np.float64) for z in (K, bid, ask, T))
     n = K.shape[0]
@@ -552,14 +573,18 @@ def _rows_args(starts, order, K, cp, bid, ask, T):
     if starts.ndim != 1 or starts.shape[0] < 1 or starts[0] != 0 or \
             np.any(np.diff(starts) < 0) or starts[-1] > n:
         raise ValueError("starts must rise from 0 to at most the number of rows")
-    idx = np.array(order, dtype=np.int64)        # a copy: the kernel sorts it per group
+    # the kernels sort each group's row positions in place: a copy unless the caller
+    # hands its own (a writable int64 array it does not need in its order any more)
+    idx = order if own_order and isinstance(order, np.ndarray) and order.dtype == np.int64 \
+        and order.flags.writeable and order.flags.c_contiguous else \
+        np.array(order, dtype=np.int64)
     if idx.shape != (int(starts[-1]),) or (idx.size and (idx.min() < 0 or idx.max() >= n)):
         raise ValueError("order must hold starts[-1] row positions within the rows")
     return starts, idx, K, cp, bid, ask, T
 
 
 def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pairs=3,
-             rate_range=(-0.2, 1.0), idx_out=None, scratch=None):
+             rate_range=(-0.2, 1.0), idx_out=None, own_order=False):
     """Implied forward and discount of every group by put-call parity (see the module
     docstring).
 
@@ -573,9 +598,11 @@ def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pair
     (int64), ``residual`` (RMS of C - P - D (F - K) over the pairs kept, in currency) and
     ``status`` (int8 codes of ``NAMES``).  ``idx_out``: when given, a dict that receives
     ``order`` with each group's rows in strike order (reused by ``strip_variance``).
-    ``scratch``: optional float64 work space of shape (4, starts[-1]) (overwritten).
+    ``own_order``: sort ``order`` itself in place (each group's rows stay its rows)
+    instead of a copy.
     """
-    starts, idx, K, cp, bid, ask, T = _rows_args(starts, order, K, cp, bid, ask, T)
+    starts, idx, K, cp, bid, ask, T = _rows_args(starts, order, K, cp, bid, ask, T,
+                                                 own_order)
     fit_discount = D is None
     n = K.shape[0]
     D = _ro(np.zeros(n) if fit_discount else D, np.float64)
@@ -585,18 +612,19 @@ def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pair
         raise ValueError("min_pairs must be >= 1")
     lo, hi = (float(z) for z in rate_range)
     G = starts.shape[0] - 1
-    m = int(starts[-1])
-    x, y, v, work = _scratch(scratch, 4, m)
+    scratch, iscratch = _scratch(starts, 4)
     out = {"T": np.empty(G), "forward": np.empty(G), "discount": np.empty(G),
            "pairs_used": np.empty(G, np.int64), "residual": np.empty(G),
            "status": np.empty(G, np.int8)}
-    args = (starts, idx, K, cp, bid, ask, T, D, bool(quoted), fit_discount, int(min_pairs), lo, hi, x, y, v, work, out["T"],
-            out["forward"], out["discount"], out["pairs_used"], out["residual"],
+    head = (starts, idx, K, cp, bid, ask, T, D, bool(quoted), fit_discount, int(min_pairs),
+            lo, hi)
+    tail = (out["T"], out["forward"], out["discount"], out["pairs_used"], out["residual"],
             out["status"])
     if G <= GROUP_BLOCK:
-        _forward_groups(0, G, *args)
+        w = scratch[0]
+        _forward_groups(0, G, *head, w[0], w[1], w[2], w[3], iscratch[0], *tail)
     else:
-        _forward_par(*args)
+        _forward_par(*head, scratch, iscratch, *tail)
     if idx_out is not None:
         idx_out["order"] = idx
     return out
@@ -606,8 +634,9 @@ def forwards(starts, order, K, cp, bid, ask, T, D=None, *, quoted=True, min_pair
 
 @_njit
 def _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm):
-    """Distinct usable strikes of the group, in order, into ks[a:a+m], with the call and
-    put mids (NaN where that side has no usable quote) in cm, pm; returns m."""
+    """Distinct usable strikes of the group, in order, into ks[0:m], with the call and
+    put mids (NaN where that side has no usable quote) in cm, pm; returns m.  idx[a:e]
+    is in strike order."""
     m = 0
     i = a
     while i < e:
@@ -628,9 +657,9 @@ def _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm):
                         p_mid = mid
             j += 1
         if c_mid == c_mid or p_mid == p_mid:
-            ks[a + m] = k
-            cm[a + m] = c_mid
-            pm[a + m] = p_mid
+            ks[m] = k
+            cm[m] = c_mid
+            pm[m] = p_mid
             m += 1
         i = j
     return m
@@ -638,7 +667,7 @@ def _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm):
 
 @_njit
 def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks, cm,
-                    pm, var_out, n_out, st_out):
+                    pm, itmp, var_out, n_out, st_out):
     nan = np.nan
     var_out[g] = nan
     n_out[g] = 0
@@ -650,28 +679,28 @@ def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
     f = F[g]
     d = D[g]
     t = Tg[g]
-    _sort_rows(idx, a, e, K, cp)
+    _sort_rows(idx, a, e, K, ks, cm, itmp)
     m = _strip(idx, a, e, K, cp, bid, ask, T, quoted, ks, cm, pm)
     # K0: the largest strike at or below the forward
     i0 = -1
-    for i in range(a, a + m):
+    for i in range(m):
         if ks[i] <= f:
             i0 = i
     if i0 < 0:
         st_out[g] = TOO_FEW_STRIKES
         return
-    q0 = nan
+    k0 = ks[i0]
     if cm[i0] == cm[i0] and pm[i0] == pm[i0]:
         q0 = 0.5 * (cm[i0] + pm[i0])
     elif pm[i0] == pm[i0]:
         q0 = pm[i0]
     else:
         q0 = cm[i0]
-    # walk out from K0 each way; mark the strikes used by keeping their quote in cm
+    # walk out from K0 each way, up to the first two strikes in a row without a quote
     lo = i0
     miss = 0
     i = i0 - 1
-    while i >= a and miss < 2:
+    while i >= 0 and miss < 2:
         if pm[i] == pm[i]:
             lo = i
             miss = 0
@@ -681,31 +710,31 @@ def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
     hi = i0
     miss = 0
     i = i0 + 1
-    while i < a + m and miss < 2:
+    while i < m and miss < 2:
         if cm[i] == cm[i]:
             hi = i
             miss = 0
         else:
             miss += 1
         i += 1
-    # the used strikes and their out-of-the-money quotes, compacted into ks/cm at a..
+    # the strikes used and their out-of-the-money quotes, compacted to ks/cm[0:u]
+    # (position u <= i: nothing is overwritten before it is read)
     u = 0
     for i in range(lo, hi + 1):
         q = pm[i] if i < i0 else (cm[i] if i > i0 else q0)
         if q == q:
-            ks[a + u] = ks[i]
-            cm[a + u] = q
+            ks[u] = ks[i]
+            cm[u] = q
             u += 1
     n_out[g] = u
     if u < MIN_STRIKES:
         st_out[g] = TOO_FEW_STRIKES
         return
     total = 0.0
-    k0 = ks[i0]
-    for i in range(a, a + u):
-        if i == a:
-            dk = ks[i + 1] - ks[i]
-        elif i == a + u - 1:
+    for i in range(u):
+        if i == 0:
+            dk = ks[1] - ks[0]
+        elif i == u - 1:
             dk = ks[i] - ks[i - 1]
         else:
             dk = 0.5 * (ks[i + 1] - ks[i - 1])
@@ -721,50 +750,53 @@ def _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
 
 @_njit
 def _variance_groups(a, e, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks,
-                     cm, pm, var_out, n_out, st_out):
+                     cm, pm, itmp, var_out, n_out, st_out):
     for g in range(a, e):
         _variance_group(g, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks, cm,
-                        pm, var_out, n_out, st_out)
+                        pm, itmp, var_out, n_out, st_out)
 
 
 @numba.njit(parallel=True, error_model="numpy", fastmath=set(FASTMATH), cache=True,
             nogil=True)
-def _variance_par(starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, ks, cm, pm,
-                  var_out, n_out, st_out):
+def _variance_par(starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in, scratch,
+                  iscratch, var_out, n_out, st_out):
     n_groups = starts.shape[0] - 1
     for blk in prange((n_groups + GROUP_BLOCK - 1) // GROUP_BLOCK):
         a = blk * GROUP_BLOCK
         e = min(n_groups, a + GROUP_BLOCK)
+        tid = numba.get_thread_id()             # this thread's work space
+        w = scratch[tid]
         _variance_groups(a, e, starts, idx, K, cp, bid, ask, T, quoted, F, D, Tg, st_in,
-                         ks, cm, pm, var_out, n_out, st_out)
+                         w[0], w[1], w[2], iscratch[tid], var_out, n_out, st_out)
 
 
 def strip_variance(starts, order, K, cp, bid, ask, T, F, D, Tg, status_in=None, *,
-                   quoted=True, scratch=None):
+                   quoted=True, own_order=False):
     """Model-free implied variance (annualised) of every group from its out-of-the-money
     strip (see the module docstring).
 
     Rows as for ``forwards``; per group: ``F`` forward, ``D`` discount, ``Tg`` time to
     expiry and ``status_in`` (int8; a group whose status is not ok keeps it and gets no
     variance; None: all ok).  Returns a dict of per-group arrays ``variance``,
-    ``strikes_used`` (int64) and ``status``."""
-    starts, idx, K, cp, bid, ask, T = _rows_args(starts, order, K, cp, bid, ask, T)
+    ``strikes_used`` (int64) and ``status``; ``own_order`` as for ``forwards``."""
+    starts, idx, K, cp, bid, ask, T = _rows_args(starts, order, K, cp, bid, ask, T,
+                                                 own_order)
     G = starts.shape[0] - 1
     F, D, Tg = (_ro(z, np.float64) for z in (F, D, Tg))
     st_in = _ro(np.zeros(G, np.int8) if status_in is None else status_in, np.int8)
     for name, z in (("F", F), ("D", D), ("Tg", Tg), ("status_in", st_in)):
         if z.shape != (G,):
             raise ValueError(f"{name} must have one value per group, shape {(G,)}")
-    m = int(starts[-1])
-    ks, cm, pm = _scratch(scratch, 3, m)
+    scratch, iscratch = _scratch(starts, 3)
     out = {"variance": np.empty(G), "strikes_used": np.empty(G, np.int64),
            "status": np.empty(G, np.int8)}
-    args = (starts, idx, K, cp, bid, ask, T, bool(quoted), F, D, Tg, st_in, ks, cm, pm,
-            out["variance"], out["strikes_used"], out["status"])
+    head = (starts, idx, K, cp, bid, ask, T, bool(quoted), F, D, Tg, st_in)
+    tail = (out["variance"], out["strikes_used"], out["status"])
     if G <= GROUP_BLOCK:
-        _variance_groups(0, G, *args)
+        w = scratch[0]
+        _variance_groups(0, G, *head, w[0], w[1], w[2], iscratch[0], *tail)
     else:
-        _variance_par(*args)
+        _variance_par(*head, scratch, iscratch, *tail)
     return out
 
 
@@ -869,39 +901,36 @@ def horizon_variance(starts, T, V, ok, horizons, *, extrapolate=False):
 
 @_njit
 def _segment(keys, starts):
-    n = keys.shape[1]
-    nk = keys.shape[0]
+    n = keys[0].shape[0]
+    nk = len(keys)
+    starts[0] = 0
     if n == 0:
-        starts[0] = 0
         return 0
     g = 0
-    starts[0] = 0
     for i in range(1, n):
-        differ = False
         for j in range(nk):
-            a = keys[j, i - 1]
-            b = keys[j, i]
+            a = keys[j][i - 1]
+            b = keys[j][i]
             if a != b:
                 if b < a:
                     return -1
-                differ = True
+                g += 1
+                starts[g] = i
                 break
-        if differ:
-            g += 1
-            starts[g] = i
     g += 1
     starts[g] = n
     return g
 
 
 def segment(keys):
-    """Group starts of rows whose int64 ``keys`` (shape (number of keys, n)) are already in
-    ascending lexicographic order: an int64 array (groups + 1); None when they are not in
-    order (then sort first)."""
-    keys = np.ascontiguousarray(keys, dtype=np.int64)
-    if keys.ndim != 2:
-        raise ValueError("keys must have shape (number of keys, rows)")
-    starts = np.empty(keys.shape[1] + 1, np.int64)
+    """Group starts of rows whose int64 ``keys`` (a sequence of 1-d arrays, one per key)
+    are already in ascending lexicographic order: an int64 array (groups + 1); None when
+    they are not in order (then sort first)."""
+    keys = tuple(_ro(k, np.int64) for k in keys)
+    n = keys[0].shape[0]
+    if any(k.shape != (n,) for k in keys):
+        raise ValueError("keys must be 1-d arrays of one length")
+    starts = np.empty(n + 1, np.int64)
     g = _segment(keys, starts)
     if g < 0:
         return None
@@ -954,3 +983,32 @@ def group_inputs(starts, order, T, D, F):
     _group_inputs(starts, idx, T, D, F, out["T"], out["discount"], out["forward"],
                   out["status"])
     return out
+
+
+@_njit
+def _count_groups(codes, n_codes, counts, order):
+    for i in range(codes.shape[0]):
+        counts[codes[i] + 1] += 1
+    for c in range(n_codes):
+        counts[c + 1] += counts[c]
+    for i in range(codes.shape[0]):        # stable: input order within a code
+        c = codes[i]
+        order[counts[c]] = i
+        counts[c] += 1
+
+
+def counting_groups(codes, n_codes):
+    """(starts, order) of rows grouped by dense int64 ``codes`` in [0, n_codes), groups in
+    code order (empty codes left out), rows of a group in input order: a counting sort,
+    linear in the rows."""
+    codes = _ro(codes, np.int64)
+    if codes.size and (codes.min() < 0 or codes.max() >= n_codes):
+        raise ValueError("codes must lie in [0, n_codes)")
+    counts = np.zeros(n_codes + 1, np.int64)
+    order = np.empty(codes.shape[0], np.int64)
+    _count_groups(codes, n_codes, counts, order)
+    # counts[c] is now the end of code c's rows: the starts are the distinct ends
+    ends = counts[:n_codes]
+    sizes = np.diff(np.concatenate(([0], ends)))
+    starts = np.concatenate(([0], ends[sizes > 0])).astype(np.int64)
+    return starts, order

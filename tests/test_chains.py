@@ -422,11 +422,20 @@ def test_strip_stops_after_two_strikes_without_a_quote():
     p[put & (K == 85.0)] = 0.0                 # one gap: bridged
     p[put & ((K == 77.5) | (K == 75.0))] = 0.0  # two in a row: the strip ends above them
     c["premium"] = p
-    out = volsweep.model_free_variance(table(c), by=BY, forwards="columns"
-                                       if False else "implied")
-    n_puts_used = np.sum((strikes < 100.0) & (strikes > 77.5)) - 1   # 80 .. 97.5 less 85
-    n_calls_used = np.sum(strikes > 100.0)
-    assert out["strikes_used"][0].as_py() == n_puts_used + 1 + n_calls_used
+    t = table(c)
+    t = t.append_column("forward", pa.array(np.full(t.num_rows, F))).append_column(
+        "discount", pa.array(np.full(t.num_rows, D)))
+    out = volsweep.model_free_variance(t, by=BY, forwards="columns")
+    used = strikes[((strikes > 77.5) & (strikes != 85.0)) | (strikes >= 100.0)]
+    assert out["strikes_used"][0].as_py() == used.size
+    # the rule written out (puts below K0 = 100, calls above, their average at K0; each
+    # strike weighs half the distance between its neighbours in the strip)
+    call, put = c["premium"][0::2], c["premium"][1::2]
+    q = np.array([put[strikes == k][0] if k < 100.0 else call[strikes == k][0] if k > 100.0
+                  else 0.5 * (put[strikes == k][0] + call[strikes == k][0]) for k in used])
+    dk = np.r_[used[1] - used[0], (used[2:] - used[:-2]) / 2, used[-1] - used[-2]]
+    expected = 2.0 / (T * D) * np.sum(dk / used ** 2 * q)
+    assert out["variance"][0].as_py() == pytest.approx(expected, rel=1e-12)
 
 
 # ------------------------------------------------------------------ constant maturity
@@ -474,17 +483,19 @@ def test_median_by_selection_against_numpy():
         assert kchains._median(v.copy(), 0, m) == ref
 
 
-def test_heap_sort_of_rows_against_numpy_lexsort():
-    # reference: numpy.lexsort on (row, -call/put, strike), NaN strikes last
+def test_merge_sort_of_rows_against_numpy_stable_sort():
+    # reference: numpy's stable argsort by strike (NaN last): rows of one strike keep
+    # their order
     rng = np.random.default_rng(1)
-    K = rng.integers(0, 30, 400).astype(float)
-    K[rng.integers(0, 400, 20)] = np.nan
-    cp = rng.choice(np.array([1, -1], np.int8), 400)
-    idx = rng.permutation(400).astype(np.int64)
-    ref = np.lexsort((np.arange(400), -cp, K))
-    got = np.sort(idx)
-    kchains._sort_rows(got, 0, 400, K, cp)
-    assert np.array_equal(got, ref)
+    for n in (1, 2, 7, 400, 1000):
+        K = rng.integers(0, 30, n).astype(float)
+        K[rng.integers(0, n, n // 20)] = np.nan
+        idx = rng.permutation(n).astype(np.int64)
+        key = np.where(np.isnan(K[idx]), np.inf, K[idx])
+        ref = idx[np.argsort(key, kind="stable")]
+        got = idx.copy()
+        kchains._sort_rows(got, 0, n, K, np.empty(n), np.empty(n), np.empty(n, np.int64))
+        assert np.array_equal(got, ref)
 
 
 def test_readme_lists_every_group_status_in_order():
@@ -496,3 +507,18 @@ def test_readme_lists_every_group_status_in_order():
                       text.split("### Chain outputs and group statuses")[1].split("\n### ")[0],
                       flags=re.M)
     assert [(int(c), w) for c, w in rows] == list(enumerate(kchains.NAMES))
+
+
+def test_many_key_combinations_group_by_sorting_and_keep_every_group():
+    # more key combinations than counting can hold: the sort path; every row its own group
+    rng = np.random.default_rng(5)
+    n = 300
+    t = pa.table({"a": rng.permutation(n).astype(float), "b": rng.permutation(n) * 1.5,
+                  "strike": np.full(n, 100.0), "is_call": rng.random(n) < 0.5,
+                  "premium": np.full(n, 1.0), "expiry_years": np.full(n, 0.5)})
+    out = volsweep.implied_forwards(t, by=("a", "b"))
+    assert out.num_rows == n
+    assert out["a"].to_pylist() == sorted(t["a"].to_pylist())
+    assert set(out["status"].to_pylist()) == {"too_few_pairs"}
+    assert volsweep.implied_forwards(t.take(pa.array(rng.permutation(n))),
+                                     by=("a", "b")).equals(out)
