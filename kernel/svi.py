@@ -89,9 +89,9 @@ POINT_NAMES = ("ok", "missing_input", "bad_input", "no_smile", "negative_varianc
 MIN_STRIKES = 5
 GRID_M = 3             # start grid: GRID_M values of m times GRID_S of sigma
 GRID_S = 2
-NM_ITERATIONS = 14
-POLISH_ITERATIONS = 8
-G_POINTS = 201
+NM_ITERATIONS = 6
+POLISH_ITERATIONS = 12
+G_POINTS = 101
 GOLDEN_STEPS = 30
 BLEND_STEPS = 40
 LEE_SLOPE = 2.0        # largest wing slope of total variance (Lee's moment formula)
@@ -403,16 +403,22 @@ def _admissible(b, rho, sig):
 
 @_njit
 def _polish(k, v, W, o, e, p, scratch, R):
-    """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place, one pass over the quotes
-    per iteration: the pass at a trial point gives its objective and, when it is lower,
-    the next step.  A trial point is refused without a pass when it leaves the admissible
-    set, and, with R > 0, unless the slice stays free of butterfly arbitrage on [-R, R]
-    (``_free``)."""
+    """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place: at most
+    ``POLISH_ITERATIONS`` iterations of one pass over the quotes each, ending early once an
+    accepted step changes no parameter by more than 1e-10 relative (converged; the
+    only data-dependent amount of work in a fit).  The pass at a trial
+    point gives its
+    objective and, when that is not higher, the normal equations of the next step (kept
+    apart until then, so a refused trial costs no second pass).  A trial point is
+    refused without a pass when it leaves the admissible set, and, with R > 0, unless the
+    slice stays free of butterfly arbitrage on [-R, R] (``_free``)."""
     A = scratch[0:25]
     g = scratch[25:30]
     L = scratch[30:55]
     step = scratch[55:60]
     best = scratch[65:70]
+    A2 = scratch[80:105]
+    g2 = scratch[105:110]
     gs = scratch[_SCRATCH_FIXED:_SCRATCH_FIXED + G_POINTS]
     for j in range(_N_PARAMS):
         best[j] = p[j]
@@ -430,17 +436,22 @@ def _polish(k, v, W, o, e, p, scratch, R):
         if not _admissible(b, rho, sig) or (R > 0.0 and not _free(a, b, rho, m, sig, R, gs)):
             lam *= 10.0
             continue
-        # the trial's pass overwrites A and g; on refusal they are those of the trial, so
-        # recompute at the best point (rare once the iteration has settled)
-        fn = _normal_equations(k, v, W, o, e, a, b, rho, m, sig, A, g)
+        fn = _normal_equations(k, v, W, o, e, a, b, rho, m, sig, A2, g2)
         if fn <= f:
+            small = True                  # converged: no step changes more than
+            for j in range(_N_PARAMS):    # 1e-10 relative
+                small = small and abs(step[j]) <= 1e-10 * (abs(best[j]) + 1e-3)
             best[0], best[1], best[2], best[3], best[4] = a, b, rho, m, sig
             f = fn
+            for j in range(25):
+                A[j] = A2[j]
+            for j in range(_N_PARAMS):
+                g[j] = g2[j]
             lam = max(lam * 0.1, 1e-12)
+            if small:
+                break
         else:
             lam *= 10.0
-            f = _normal_equations(k, v, W, o, e, best[0], best[1], best[2], best[3],
-                                  best[4], A, g)
     for j in range(_N_PARAMS):
         p[j] = best[j]
 
@@ -686,7 +697,7 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     status[s] = OK
 
 
-_SCRATCH_FIXED = 80
+_SCRATCH_FIXED = 112
 _SLICES_PER_TASK = 32
 
 
