@@ -91,6 +91,7 @@ GRID_M = 3             # start grid: GRID_M values of m times GRID_S of sigma
 GRID_S = 2
 NM_ITERATIONS = 6
 POLISH_ITERATIONS = 12
+SEARCH_QUOTES = 32     # quotes of a slice the outer search uses (evenly spread)
 G_POINTS = 101
 GOLDEN_STEPS = 30
 BLEND_STEPS = 40
@@ -561,9 +562,25 @@ def _vol_errors(k, v, W, o, e, a, b, rho, m, sig, inv_t):
 
 
 @_njit
-def _usable(ok, iv, k, F, T, i):
-    return (ok[i] == 1 and iv[i] > 0.0 and iv[i] < np.inf and abs(k[i]) < np.inf
-            and F[i] > 0.0 and F[i] < np.inf and T[i] > 0.0 and T[i] < np.inf)
+def _weighted_moments(k, v, W, o, e, mom):
+    """mom = (mean k, variance of k, mean v, variance of v, covariance of k and v) under
+    the weights W (summing to 1) of quotes [o, e); returns mean v."""
+    mk = 0.0
+    sv = 0.0
+    for j in range(o, e):
+        mk += W[j] * k[j]
+        sv += W[j] * v[j]
+    vk = 0.0
+    svv = 0.0
+    ckv = 0.0
+    for j in range(o, e):
+        dk = k[j] - mk
+        dv = v[j] - sv
+        vk += W[j] * dk * dk
+        svv += W[j] * dv * dv
+        ckv += W[j] * dk * dv
+    mom[0], mom[1], mom[2], mom[3], mom[4] = mk, vk, sv, svv, ckv
+    return sv
 
 
 @_njit
@@ -582,48 +599,46 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     butterfly[s] = -1
     k_range[s] = np.nan
     used[s] = 0
+    # one pass: the quotes used, compacted into [o, o + nu) of the work arrays (rows are
+    # in strike order, so distinct strikes are counted where k changes), and what the
+    # others lack
     n_iv = 0
     n_f = 0
-    first = -1
+    nu = 0
+    n_strikes = 0
+    last_k = np.nan
+    spread_max = 0.0
+    t_s = 1.0
     for i in range(o, e):
         if ok[i] == 1 and iv[i] > 0.0 and iv[i] < np.inf:
             n_iv += 1
             if F[i] > 0.0 and F[i] < np.inf and abs(lnk[i]) < np.inf:
                 n_f += 1
-                if first < 0 and T[i] > 0.0 and T[i] < np.inf:
-                    first = i
+                if T[i] > 0.0 and T[i] < np.inf:
+                    j = o + nu
+                    if nu == 0:                 # the slice's forward and time
+                        fwd[s] = F[i]
+                        tex[s] = T[i]
+                        t_s = T[i]
+                    k[j] = lnk[i]
+                    v[j] = iv[i] * iv[i] * t_s
+                    sp = spread[i]
+                    W[j] = sp if sp > 0.0 and sp < np.inf else np.nan
+                    if W[j] > spread_max:
+                        spread_max = W[j]
+                    if k[j] != last_k:
+                        n_strikes += 1
+                        last_k = k[j]
+                    nu += 1
     if n_iv == 0:
         status[s] = NO_QUOTES
         return
     if n_f == 0:
         status[s] = BAD_FORWARD
         return
-    if first < 0:
+    if nu == 0:
         status[s] = BAD_EXPIRY
         return
-    f_s = F[first]
-    t_s = T[first]
-    fwd[s] = f_s
-    tex[s] = t_s
-    # the quotes used, compacted into [o, o + nu) of the work arrays (rows are in strike
-    # order, so distinct strikes are counted where k changes)
-    nu = 0
-    n_strikes = 0
-    last_k = np.nan
-    spread_max = 0.0
-    for i in range(o, e):
-        if _usable(ok, iv, lnk, F, T, i):
-            j = o + nu
-            k[j] = lnk[i]
-            v[j] = iv[i] * iv[i] * t_s
-            sp = spread[i]
-            W[j] = sp if sp > 0.0 and sp < np.inf else np.nan
-            if W[j] > spread_max:
-                spread_max = W[j]
-            if k[j] != last_k:
-                n_strikes += 1
-                last_k = k[j]
-            nu += 1
     used[s] = nu
     if n_strikes < MIN_STRIKES:
         status[s] = TOO_FEW_QUOTES
@@ -638,24 +653,28 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
         wsum += W[j]
         k_lo = min(k_lo, k[j])
         k_hi = max(k_hi, k[j])
-    mk = 0.0
-    sv = 0.0
     for j in range(o, ee):
         W[j] /= wsum
-        mk += W[j] * k[j]
-        sv += W[j] * v[j]
-    vk = 0.0
-    svv = 0.0
-    ckv = 0.0
-    for j in range(o, ee):
-        dk = k[j] - mk
-        dv = v[j] - sv
-        vk += W[j] * dk * dk
-        svv += W[j] * dv * dv
-        ckv += W[j] * dk * dv
     mom = scratch[70:75]
-    mom[0], mom[1], mom[2], mom[3], mom[4] = mk, vk, sv, svv, ckv
-    m, sig = _search(k, v, W, o, ee, mom, k_lo, k_hi)
+    sv = _weighted_moments(k, v, W, o, ee, mom)
+    # the outer search on at most SEARCH_QUOTES quotes evenly spread over the slice (the
+    # polish below uses all of them)
+    nsub = min(nu, SEARCH_QUOTES)
+    ks = scratch[_SUB:_SUB + SEARCH_QUOTES]
+    vs = scratch[_SUB + SEARCH_QUOTES:_SUB + 2 * SEARCH_QUOTES]
+    ws = scratch[_SUB + 2 * SEARCH_QUOTES:_SUB + 3 * SEARCH_QUOTES]
+    wsub = 0.0
+    for i in range(nsub):
+        j = o + (i * (nu - 1)) // (nsub - 1)
+        ks[i] = k[j]
+        vs[i] = v[j]
+        ws[i] = W[j]
+        wsub += W[j]
+    for i in range(nsub):
+        ws[i] /= wsub
+    mom_s = scratch[75:80]
+    _weighted_moments(ks, vs, ws, 0, nsub, mom_s)
+    m, sig = _search(ks, vs, ws, 0, nsub, mom_s, k_lo, k_hi)
     _, a, d, c = _reduced(k, v, W, o, ee, m, sig, mom)
     p = scratch[60:65]
     p[0] = a
@@ -698,6 +717,7 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
 
 
 _SCRATCH_FIXED = 112
+_SUB = _SCRATCH_FIXED + G_POINTS       # the search's quotes (k, v, W)
 _SLICES_PER_TASK = 32
 
 
@@ -750,7 +770,8 @@ def _calendar_all(surface, params, status, k_range, calendar, scratch):
                     break
 
 
-def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False):
+def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False,
+               work=None):
     """Fit one raw SVI slice per segment ``[offsets[s], offsets[s+1])`` of the rows.
 
     Rows of a segment must be in strike order.  ``lnk``: log-moneyness ln(K/F) per row;
@@ -763,7 +784,8 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     sigma), ``forward``, ``expiry_years``, ``rmse_iv``, ``atm_vol``, ``atm_skew``,
     ``min_g``, ``min_g_k``, ``butterfly`` and ``calendar`` (int8: 1 yes, 0 no, -1 no
     value), ``quotes_used`` (int64), ``k_range`` (R), ``status`` (int8, ``SLICE_NAMES``).
-    Inputs are not modified.
+    ``work``: optionally three writable float64 arrays of the rows' length, overwritten
+    (the caller's preallocated scratch).  Inputs are not modified.
     """
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
     lnk, iv, spread, F, T = (np.ascontiguousarray(x, dtype=np.float64)
@@ -789,9 +811,15 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     }
     if ns == 0:
         return out
-    k, v, W = np.empty(n_rows), np.empty(n_rows), np.empty(n_rows)
+    if work is None:
+        work = (np.empty(n_rows), np.empty(n_rows), np.empty(n_rows))
+    for x in work:
+        if not (isinstance(x, np.ndarray) and x.dtype == np.float64 and x.shape == (n_rows,)
+                and x.flags.c_contiguous and x.flags.writeable):
+            raise ValueError(f"work arrays must be writable float64 arrays of length {n_rows}")
+    k, v, W = work
     scratch = np.empty(((ns + _SLICES_PER_TASK - 1) // _SLICES_PER_TASK,
-                        _SCRATCH_FIXED + G_POINTS))
+                        _SUB + 3 * SEARCH_QUOTES))
     _fit_all(offsets, lnk, iv, spread, ok, F, T, bool(arbitrage_free), k, v, W,
              out["params"], out["forward"], out["expiry_years"], out["rmse_iv"],
              out["atm_vol"], out["atm_skew"], out["min_g"], out["min_g_k"],
