@@ -24,6 +24,7 @@ from volsweep.kernel.registry import DEFAULT_MODEL
 
 from ._columns import OptionError, _scalar_time, _to_float64, _to_seconds, _years_between
 from ._input import as_batches
+from ._output import new_array
 from .loader import launch_guard
 
 # our input names (each may be remapped with columns=)
@@ -206,9 +207,14 @@ def _is_ok(col: pa.ChunkedArray) -> np.ndarray:
             hit = np.asarray(pc.fill_null(pc.equal(chunk.dictionary, "ok"), False)
                              .to_numpy(zero_copy_only=False), bool)
             idx = chunk.indices
-            valid = np.asarray(pc.is_valid(idx).to_numpy(zero_copy_only=False), bool)
-            ix = pc.fill_null(idx, 0).to_numpy(zero_copy_only=False)
-            parts.append(hit[ix] & valid if hit.size else np.zeros(len(chunk), bool))
+            if not hit.size:
+                parts.append(np.zeros(len(chunk), bool))
+            elif not idx.null_count:
+                parts.append(hit[idx.to_numpy(zero_copy_only=False)])
+            else:
+                valid = np.asarray(pc.is_valid(idx).to_numpy(zero_copy_only=False), bool)
+                ix = pc.fill_null(idx, 0).to_numpy(zero_copy_only=False)
+                parts.append(hit[ix] & valid)
         else:
             parts.append(np.asarray(pc.fill_null(pc.equal(chunk, "ok"), False)
                                     .to_numpy(zero_copy_only=False), bool))
@@ -220,6 +226,10 @@ def _changes(col: pa.ChunkedArray) -> np.ndarray:
     other, NaNs each other)."""
     arr = col.combine_chunks() if col.num_chunks != 1 else col.chunk(0)
     if pa.types.is_dictionary(arr.type):
+        idx = arr.indices
+        if not idx.null_count and len(pc.unique(arr.dictionary)) == len(arr.dictionary):
+            ix = idx.to_numpy(zero_copy_only=False)    # distinct entries: compare indices
+            return ix[1:] != ix[:-1]
         c = _dense_codes(pa.chunked_array([arr]))
         return c[1:] != c[:-1]
     t = arr.type
@@ -350,11 +360,13 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
         ok &= _is_ok(st)
     bcol, acol = reader.name("iv_bid"), reader.name("iv_ask")
     if bcol is not None and acol is not None:
-        spread = reader.floats("iv_ask", acol) - reader.floats("iv_bid", bcol)
+        spread = np.subtract(reader.floats("iv_ask", acol), reader.floats("iv_bid", bcol),
+                             out=new_array(n))
     else:
-        spread = np.full(n, np.nan)
+        spread = new_array(n)
+        spread.fill(np.nan)
     with np.errstate(all="ignore"):
-        lnk = np.log(strike / F)
+        lnk = np.log(np.divide(strike, F, out=new_array(n)), out=new_array(n))
 
     # one sort into slices (skipped when the rows are already in order)
     surface_keys, time_key = _surface_and_time(by)
@@ -366,7 +378,11 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
         lnk, iv, spread, ok, F, T = (x[order] for x in (lnk, iv, spread, ok, F, T))
     offsets = np.r_[starts, n].astype(np.int64)
     with launch_guard():
-        out = _svi.fit_slices(offsets, lnk, iv, spread, ok.astype(np.int8), F, T, surface,
+        # work arrays (one per row) from Arrow's pool, which reuses freed memory (fresh
+        # pages cost more to map than the fit of a slice; see bindings/_output.py)
+        work = tuple(new_array(n) for _ in range(3))
+        out = _svi.fit_slices(offsets, lnk, iv, spread, ok.view(np.int8), F, T, surface,
+                              work=work,
                               arbitrage_free=bool(arbitrage_free))
     first_rows = starts if order is None else order[starts]
     return _smiles_table(table, by, time_key, first_rows, out)

@@ -89,9 +89,10 @@ POINT_NAMES = ("ok", "missing_input", "bad_input", "no_smile", "negative_varianc
 MIN_STRIKES = 5
 GRID_M = 3             # start grid: GRID_M values of m times GRID_S of sigma
 GRID_S = 2
-NM_ITERATIONS = 14
-POLISH_ITERATIONS = 8
-G_POINTS = 201
+NM_ITERATIONS = 6
+POLISH_ITERATIONS = 12
+SEARCH_QUOTES = 32     # quotes of a slice the outer search uses (evenly spread)
+G_POINTS = 101
 GOLDEN_STEPS = 30
 BLEND_STEPS = 40
 LEE_SLOPE = 2.0        # largest wing slope of total variance (Lee's moment formula)
@@ -403,16 +404,22 @@ def _admissible(b, rho, sig):
 
 @_njit
 def _polish(k, v, W, o, e, p, scratch, R):
-    """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place, one pass over the quotes
-    per iteration: the pass at a trial point gives its objective and, when it is lower,
-    the next step.  A trial point is refused without a pass when it leaves the admissible
-    set, and, with R > 0, unless the slice stays free of butterfly arbitrage on [-R, R]
-    (``_free``)."""
+    """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place: at most
+    ``POLISH_ITERATIONS`` iterations of one pass over the quotes each, ending early once an
+    accepted step changes no parameter by more than 1e-10 relative (converged; the
+    only data-dependent amount of work in a fit).  The pass at a trial
+    point gives its
+    objective and, when that is not higher, the normal equations of the next step (kept
+    apart until then, so a refused trial costs no second pass).  A trial point is
+    refused without a pass when it leaves the admissible set, and, with R > 0, unless the
+    slice stays free of butterfly arbitrage on [-R, R] (``_free``)."""
     A = scratch[0:25]
     g = scratch[25:30]
     L = scratch[30:55]
     step = scratch[55:60]
     best = scratch[65:70]
+    A2 = scratch[80:105]
+    g2 = scratch[105:110]
     gs = scratch[_SCRATCH_FIXED:_SCRATCH_FIXED + G_POINTS]
     for j in range(_N_PARAMS):
         best[j] = p[j]
@@ -430,17 +437,22 @@ def _polish(k, v, W, o, e, p, scratch, R):
         if not _admissible(b, rho, sig) or (R > 0.0 and not _free(a, b, rho, m, sig, R, gs)):
             lam *= 10.0
             continue
-        # the trial's pass overwrites A and g; on refusal they are those of the trial, so
-        # recompute at the best point (rare once the iteration has settled)
-        fn = _normal_equations(k, v, W, o, e, a, b, rho, m, sig, A, g)
+        fn = _normal_equations(k, v, W, o, e, a, b, rho, m, sig, A2, g2)
         if fn <= f:
+            small = True                  # converged: no step changes more than
+            for j in range(_N_PARAMS):    # 1e-10 relative
+                small = small and abs(step[j]) <= 1e-10 * (abs(best[j]) + 1e-3)
             best[0], best[1], best[2], best[3], best[4] = a, b, rho, m, sig
             f = fn
+            for j in range(25):
+                A[j] = A2[j]
+            for j in range(_N_PARAMS):
+                g[j] = g2[j]
             lam = max(lam * 0.1, 1e-12)
+            if small:
+                break
         else:
             lam *= 10.0
-            f = _normal_equations(k, v, W, o, e, best[0], best[1], best[2], best[3],
-                                  best[4], A, g)
     for j in range(_N_PARAMS):
         p[j] = best[j]
 
@@ -550,9 +562,25 @@ def _vol_errors(k, v, W, o, e, a, b, rho, m, sig, inv_t):
 
 
 @_njit
-def _usable(ok, iv, k, F, T, i):
-    return (ok[i] == 1 and iv[i] > 0.0 and iv[i] < np.inf and abs(k[i]) < np.inf
-            and F[i] > 0.0 and F[i] < np.inf and T[i] > 0.0 and T[i] < np.inf)
+def _weighted_moments(k, v, W, o, e, mom):
+    """mom = (mean k, variance of k, mean v, variance of v, covariance of k and v) under
+    the weights W (summing to 1) of quotes [o, e); returns mean v."""
+    mk = 0.0
+    sv = 0.0
+    for j in range(o, e):
+        mk += W[j] * k[j]
+        sv += W[j] * v[j]
+    vk = 0.0
+    svv = 0.0
+    ckv = 0.0
+    for j in range(o, e):
+        dk = k[j] - mk
+        dv = v[j] - sv
+        vk += W[j] * dk * dk
+        svv += W[j] * dv * dv
+        ckv += W[j] * dk * dv
+    mom[0], mom[1], mom[2], mom[3], mom[4] = mk, vk, sv, svv, ckv
+    return sv
 
 
 @_njit
@@ -571,48 +599,46 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     butterfly[s] = -1
     k_range[s] = np.nan
     used[s] = 0
+    # one pass: the quotes used, compacted into [o, o + nu) of the work arrays (rows are
+    # in strike order, so distinct strikes are counted where k changes), and what the
+    # others lack
     n_iv = 0
     n_f = 0
-    first = -1
+    nu = 0
+    n_strikes = 0
+    last_k = np.nan
+    spread_max = 0.0
+    t_s = 1.0
     for i in range(o, e):
         if ok[i] == 1 and iv[i] > 0.0 and iv[i] < np.inf:
             n_iv += 1
             if F[i] > 0.0 and F[i] < np.inf and abs(lnk[i]) < np.inf:
                 n_f += 1
-                if first < 0 and T[i] > 0.0 and T[i] < np.inf:
-                    first = i
+                if T[i] > 0.0 and T[i] < np.inf:
+                    j = o + nu
+                    if nu == 0:                 # the slice's forward and time
+                        fwd[s] = F[i]
+                        tex[s] = T[i]
+                        t_s = T[i]
+                    k[j] = lnk[i]
+                    v[j] = iv[i] * iv[i] * t_s
+                    sp = spread[i]
+                    W[j] = sp if sp > 0.0 and sp < np.inf else np.nan
+                    if W[j] > spread_max:
+                        spread_max = W[j]
+                    if k[j] != last_k:
+                        n_strikes += 1
+                        last_k = k[j]
+                    nu += 1
     if n_iv == 0:
         status[s] = NO_QUOTES
         return
     if n_f == 0:
         status[s] = BAD_FORWARD
         return
-    if first < 0:
+    if nu == 0:
         status[s] = BAD_EXPIRY
         return
-    f_s = F[first]
-    t_s = T[first]
-    fwd[s] = f_s
-    tex[s] = t_s
-    # the quotes used, compacted into [o, o + nu) of the work arrays (rows are in strike
-    # order, so distinct strikes are counted where k changes)
-    nu = 0
-    n_strikes = 0
-    last_k = np.nan
-    spread_max = 0.0
-    for i in range(o, e):
-        if _usable(ok, iv, lnk, F, T, i):
-            j = o + nu
-            k[j] = lnk[i]
-            v[j] = iv[i] * iv[i] * t_s
-            sp = spread[i]
-            W[j] = sp if sp > 0.0 and sp < np.inf else np.nan
-            if W[j] > spread_max:
-                spread_max = W[j]
-            if k[j] != last_k:
-                n_strikes += 1
-                last_k = k[j]
-            nu += 1
     used[s] = nu
     if n_strikes < MIN_STRIKES:
         status[s] = TOO_FEW_QUOTES
@@ -627,24 +653,28 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
         wsum += W[j]
         k_lo = min(k_lo, k[j])
         k_hi = max(k_hi, k[j])
-    mk = 0.0
-    sv = 0.0
     for j in range(o, ee):
         W[j] /= wsum
-        mk += W[j] * k[j]
-        sv += W[j] * v[j]
-    vk = 0.0
-    svv = 0.0
-    ckv = 0.0
-    for j in range(o, ee):
-        dk = k[j] - mk
-        dv = v[j] - sv
-        vk += W[j] * dk * dk
-        svv += W[j] * dv * dv
-        ckv += W[j] * dk * dv
     mom = scratch[70:75]
-    mom[0], mom[1], mom[2], mom[3], mom[4] = mk, vk, sv, svv, ckv
-    m, sig = _search(k, v, W, o, ee, mom, k_lo, k_hi)
+    sv = _weighted_moments(k, v, W, o, ee, mom)
+    # the outer search on at most SEARCH_QUOTES quotes evenly spread over the slice (the
+    # polish below uses all of them)
+    nsub = min(nu, SEARCH_QUOTES)
+    ks = scratch[_SUB:_SUB + SEARCH_QUOTES]
+    vs = scratch[_SUB + SEARCH_QUOTES:_SUB + 2 * SEARCH_QUOTES]
+    ws = scratch[_SUB + 2 * SEARCH_QUOTES:_SUB + 3 * SEARCH_QUOTES]
+    wsub = 0.0
+    for i in range(nsub):
+        j = o + (i * (nu - 1)) // (nsub - 1)
+        ks[i] = k[j]
+        vs[i] = v[j]
+        ws[i] = W[j]
+        wsub += W[j]
+    for i in range(nsub):
+        ws[i] /= wsub
+    mom_s = scratch[75:80]
+    _weighted_moments(ks, vs, ws, 0, nsub, mom_s)
+    m, sig = _search(ks, vs, ws, 0, nsub, mom_s, k_lo, k_hi)
     _, a, d, c = _reduced(k, v, W, o, ee, m, sig, mom)
     p = scratch[60:65]
     p[0] = a
@@ -686,7 +716,8 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     status[s] = OK
 
 
-_SCRATCH_FIXED = 80
+_SCRATCH_FIXED = 112
+_SUB = _SCRATCH_FIXED + G_POINTS       # the search's quotes (k, v, W)
 _SLICES_PER_TASK = 32
 
 
@@ -739,7 +770,8 @@ def _calendar_all(surface, params, status, k_range, calendar, scratch):
                     break
 
 
-def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False):
+def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False,
+               work=None):
     """Fit one raw SVI slice per segment ``[offsets[s], offsets[s+1])`` of the rows.
 
     Rows of a segment must be in strike order.  ``lnk``: log-moneyness ln(K/F) per row;
@@ -752,7 +784,8 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     sigma), ``forward``, ``expiry_years``, ``rmse_iv``, ``atm_vol``, ``atm_skew``,
     ``min_g``, ``min_g_k``, ``butterfly`` and ``calendar`` (int8: 1 yes, 0 no, -1 no
     value), ``quotes_used`` (int64), ``k_range`` (R), ``status`` (int8, ``SLICE_NAMES``).
-    Inputs are not modified.
+    ``work``: optionally three writable float64 arrays of the rows' length, overwritten
+    (the caller's preallocated scratch).  Inputs are not modified.
     """
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
     lnk, iv, spread, F, T = (np.ascontiguousarray(x, dtype=np.float64)
@@ -778,9 +811,15 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     }
     if ns == 0:
         return out
-    k, v, W = np.empty(n_rows), np.empty(n_rows), np.empty(n_rows)
+    if work is None:
+        work = (np.empty(n_rows), np.empty(n_rows), np.empty(n_rows))
+    for x in work:
+        if not (isinstance(x, np.ndarray) and x.dtype == np.float64 and x.shape == (n_rows,)
+                and x.flags.c_contiguous and x.flags.writeable):
+            raise ValueError(f"work arrays must be writable float64 arrays of length {n_rows}")
+    k, v, W = work
     scratch = np.empty(((ns + _SLICES_PER_TASK - 1) // _SLICES_PER_TASK,
-                        _SCRATCH_FIXED + G_POINTS))
+                        _SUB + 3 * SEARCH_QUOTES))
     _fit_all(offsets, lnk, iv, spread, ok, F, T, bool(arbitrage_free), k, v, W,
              out["params"], out["forward"], out["expiry_years"], out["rmse_iv"],
              out["atm_vol"], out["atm_skew"], out["min_g"], out["min_g_k"],
