@@ -26,7 +26,9 @@ quoted, the line is fitted by a robust weighted regression:
    slopes between each pair and the pair half the chain away (Theil 1950, the abbreviated
    form of his rank-invariant method; it tolerates up to a quarter of the pairs
    corrupted, with m/2 slopes instead of Sen's (1968) m^2/2), the intercept as the median
-   of y - b x; the scale as 1.4826 times the median absolute weighted residual (MAD);
+   of y - b x; the scale as 1.4826 times the median absolute weighted residual (MAD), but
+   at least the smallest one above rounding (quotes on a tick grid can put more than
+   half the pairs on one line, where the MAD would be rounding and reject the others);
 3. iteratively reweighted least squares with Tukey's biweight (Beaton and Tukey 1974),
    c = 4.685 (95% efficiency under normal errors): a quote more than c scales off the
    line gets weight 0, so a stale or outlying quote is ignored, not just damped (Huber's
@@ -372,10 +374,21 @@ def _weights(v, a, m, quoted):
 
 @_njit
 def _scale(x, y, sw, a, m, icpt, slope, work, floor):
-    """1.4826 * median |residual| * sqrt(weight), at least ``floor``."""
+    """1.4826 * median |residual| * sqrt(weight) (the MAD), at least the smallest such
+    residual above 1e4 * ``floor`` (rounding) and at least ``floor``.  Quotes on a price
+    grid can put more than half the pairs on one line up to rounding (their mids differ
+    from the truth by the same quarter tick); the MAD alone is then of the order of the
+    rounding, and every other pair would be thrown out."""
+    smallest = np.inf
+    zero = 1e4 * floor
     for i in range(a, a + m):
-        work[i] = abs(y[i] - icpt - slope * x[i]) * sw[i]
+        r = abs(y[i] - icpt - slope * x[i]) * sw[i]
+        work[i] = r
+        if r > zero:
+            smallest = min(smallest, r)
     s = MAD_SCALE * _median(work, a, m)
+    if smallest < np.inf:
+        s = max(s, smallest)
     return max(s, floor)
 
 
