@@ -228,12 +228,12 @@ def _select(v, a, m, k):
     """The k-th smallest (0-based) of v[a:a+m], left at v[a+k] with no larger element
     before it and no smaller one after it.
 
-    Hoare's selection (FIND, 1961) with a median-of-three pivot, each round partitioning
-    three ways (below, equal to, above the pivot) by two passes of Lomuto's scheme
-    written without branches (a swap every step, the boundary moved by the comparison):
-    on data that differ from group to group the branches of the classic partition are
-    mispredicted about half the time, and they cost more than the swaps.  Linear time on
-    average; ties cost nothing extra.
+    Hoare's selection (FIND, 1961) with a median-of-three pivot, partitioning by Lomuto's
+    scheme written without branches (a swap every step, the boundary moved by the
+    comparison): on data that differ from group to group the branches of the classic
+    partition are mispredicted about half the time, and cost more than the swaps.  A
+    round that finds nothing below the pivot splits off the elements equal to it by a
+    second such pass, so ties cannot make it quadratic.  Linear time on average.
     """
     lo = a
     hi = a + m
@@ -252,17 +252,18 @@ def _select(v, a, m, k):
         if kk < s:
             hi = s
             continue
-        s2 = s
-        for i in range(s, hi):
+        if s > lo:
+            lo = s
+            continue
+        # nothing below the pivot: split off the elements equal to it
+        for i in range(lo, hi):
             t = v[i]
-            v[i] = v[s2]
-            v[s2] = t
-            s2 += t <= pivot
-        if kk < s2:
+            v[i] = v[s]
+            v[s] = t
+            s += t <= pivot
+        if kk < s or s == lo:     # v[kk] is the pivot (or only NaNs are left)
             return v[kk]
-        if s2 == lo:              # no progress: only NaNs are left
-            return v[kk]
-        lo = s2
+        lo = s
     if hi - lo == 2 and v[lo + 1] < v[lo]:
         v[lo], v[lo + 1] = v[lo + 1], v[lo]
     return v[kk]
