@@ -573,6 +573,15 @@ def _ro(a, dtype):
     return a
 
 
+@numba.njit(parallel=True, error_model="numpy", cache=True, nogil=True)
+def _within(idx, n):
+    """Every position in [0, n) (the loops do no bounds checks)."""
+    bad = 0
+    for i in prange(idx.shape[0]):
+        bad += (idx[i] < 0) | (idx[i] >= n)
+    return bad == 0
+
+
 def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     starts = _ro(starts, np.int64)
     K, bid, ask, T = (_ro(z, np.float64) for z in (K, bid, ask, T))
@@ -583,7 +592,9 @@ def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     cp = np.asarray(cp)
     if cp.shape != (n,) or not np.issubdtype(cp.dtype, np.integer):
         raise ValueError(f"cp must be integer codes of shape {(n,)}")
-    cp = _ro(np.where((cp == 1) | (cp == -1), cp, 0), np.int8)
+    if cp.dtype != np.int8:       # the kernels read +1 as a call, -1 as a put, else missing
+        cp = np.where((cp == 1) | (cp == -1), cp, 0).astype(np.int8)
+    cp = _ro(cp, np.int8)
     if starts.ndim != 1 or starts.shape[0] < 1 or starts[0] != 0 or \
             np.any(np.diff(starts) < 0) or starts[-1] > n:
         raise ValueError("starts must rise from 0 to at most the number of rows")
@@ -592,7 +603,7 @@ def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     idx = order if own_order and isinstance(order, np.ndarray) and order.dtype == np.int64 \
         and order.flags.writeable and order.flags.c_contiguous else \
         np.array(order, dtype=np.int64)
-    if idx.shape != (int(starts[-1]),) or (idx.size and (idx.min() < 0 or idx.max() >= n)):
+    if idx.shape != (int(starts[-1]),) or not _within(idx, n):
         raise ValueError("order must hold starts[-1] row positions within the rows")
     return starts, idx, K, cp, bid, ask, T
 

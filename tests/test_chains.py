@@ -535,3 +535,16 @@ def test_tick_grid_ties_do_not_collapse_the_scale():
     n_bad_pairs = len(set((bad // 2).tolist()))
     assert out["pairs_used"][0].as_py() >= len(strikes) - n_bad_pairs
     assert out["parity_residual"][0].as_py() > 0.001        # the quarter ticks
+
+
+def test_kernel_entry_checks_its_arguments():
+    K = np.array([90.0, 90.0, 110.0, 110.0])
+    cp = np.array([1, -1, 1, -1])                      # int64 codes are accepted
+    p = np.array([12.0, 2.0, 3.0, 12.5])
+    T = np.full(4, 0.5)
+    out = kchains.forwards([0, 4], np.arange(4), K, cp, p, p, T, quoted=False, min_pairs=2)
+    assert kchains.NAMES[out["status"][0]] == "ok"
+    with pytest.raises(ValueError, match="order"):
+        kchains.forwards([0, 4], np.array([0, 1, 2, 4]), K, cp, p, p, T, quoted=False)
+    with pytest.raises(ValueError, match="starts"):
+        kchains.forwards([0, 5], np.arange(4), K, cp, p, p, T, quoted=False)
