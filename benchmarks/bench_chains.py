@@ -100,9 +100,15 @@ def main(argv=None) -> int:
     ap.add_argument("--expiries", type=int, default=16)
     ap.add_argument("--strikes", type=int, default=100)
     ap.add_argument("--repeats", type=int, default=7)
+    ap.add_argument("--threads", type=int, default=None,
+                    help="numba threads (default: numba's)")
     args = ap.parse_args(argv)
+    import numba
+
     import volsweep
 
+    if args.threads:
+        numba.set_num_threads(args.threads)
     volsweep.warmup(models="black76", which=[], sweep=False, bid_ask=False)
     chains_section(args.underlyings, args.expiries, args.strikes, args.repeats)
     return 0

@@ -244,7 +244,7 @@ def cmd_gen(args) -> int:
     if not 0.0 <= args.bad_fraction <= 1.0:
         raise CliError(f"--bad-fraction must be between 0 and 1, got {args.bad_fraction}")
     snap = make_snapshot(n_rows=_rows_arg(args, 0), seed=args.seed,
-                         bad_fraction=args.bad_fraction)
+                         bad_fraction=args.bad_fraction, hidden_carry=args.hidden_carry)
     if output_format(args.output) == "parquet":
         write_snapshot(snap, args.output)       # the snapshot's own row groups and codec
     else:
@@ -459,6 +459,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help=".parquet, .csv, .csv.gz, .arrow, .feather or .ipc")
     g.add_argument("--seed", type=int, default=0)
     g.add_argument("--bad-fraction", type=float, default=0.01)
+    g.add_argument("--hidden-carry", action="store_true",
+                   help="price from forwards with borrow costs and cash dividends the columns "
+                   "do not show, with 2%% stale or outlying quotes (adds true_forward and "
+                   "parity_flag): the data volsweep forwards is for")
     g.add_argument("--overwrite", action="store_true")
     g.set_defaults(func=cmd_gen)
 

@@ -26,7 +26,9 @@ quoted, the line is fitted by a robust weighted regression:
    slopes between each pair and the pair half the chain away (Theil 1950, the abbreviated
    form of his rank-invariant method; it tolerates up to a quarter of the pairs
    corrupted, with m/2 slopes instead of Sen's (1968) m^2/2), the intercept as the median
-   of y - b x; the scale as 1.4826 times the median absolute weighted residual (MAD);
+   of y - b x; the scale as 1.4826 times the median absolute weighted residual (MAD), but
+   at least the smallest one above rounding (quotes on a tick grid can put more than
+   half the pairs on one line, where the MAD would be rounding and reject the others);
 3. iteratively reweighted least squares with Tukey's biweight (Beaton and Tukey 1974),
    c = 4.685 (95% efficiency under normal errors): a quote more than c scales off the
    line gets weight 0, so a stale or outlying quote is ignored, not just damped (Huber's
@@ -226,12 +228,12 @@ def _select(v, a, m, k):
     """The k-th smallest (0-based) of v[a:a+m], left at v[a+k] with no larger element
     before it and no smaller one after it.
 
-    Hoare's selection (FIND, 1961) with a median-of-three pivot, each round partitioning
-    three ways (below, equal to, above the pivot) by two passes of Lomuto's scheme
-    written without branches (a swap every step, the boundary moved by the comparison):
-    on data that differ from group to group the branches of the classic partition are
-    mispredicted about half the time, and they cost more than the swaps.  Linear time on
-    average; ties cost nothing extra.
+    Hoare's selection (FIND, 1961) with a median-of-three pivot, partitioning by Lomuto's
+    scheme written without branches (a swap every step, the boundary moved by the
+    comparison): on data that differ from group to group the branches of the classic
+    partition are mispredicted about half the time, and cost more than the swaps.  A
+    round that finds nothing below the pivot splits off the elements equal to it by a
+    second such pass, so ties cannot make it quadratic.  Linear time on average.
     """
     lo = a
     hi = a + m
@@ -250,17 +252,18 @@ def _select(v, a, m, k):
         if kk < s:
             hi = s
             continue
-        s2 = s
-        for i in range(s, hi):
+        if s > lo:
+            lo = s
+            continue
+        # nothing below the pivot: split off the elements equal to it
+        for i in range(lo, hi):
             t = v[i]
-            v[i] = v[s2]
-            v[s2] = t
-            s2 += t <= pivot
-        if kk < s2:
+            v[i] = v[s]
+            v[s] = t
+            s += t <= pivot
+        if kk < s or s == lo:     # v[kk] is the pivot (or only NaNs are left)
             return v[kk]
-        if s2 == lo:              # no progress: only NaNs are left
-            return v[kk]
-        lo = s2
+        lo = s
     if hi - lo == 2 and v[lo + 1] < v[lo]:
         v[lo], v[lo + 1] = v[lo + 1], v[lo]
     return v[kk]
@@ -372,10 +375,21 @@ def _weights(v, a, m, quoted):
 
 @_njit
 def _scale(x, y, sw, a, m, icpt, slope, work, floor):
-    """1.4826 * median |residual| * sqrt(weight), at least ``floor``."""
+    """1.4826 * median |residual| * sqrt(weight) (the MAD), at least the smallest such
+    residual above 1e4 * ``floor`` (rounding) and at least ``floor``.  Quotes on a price
+    grid can put more than half the pairs on one line up to rounding (their mids differ
+    from the truth by the same quarter tick); the MAD alone is then of the order of the
+    rounding, and every other pair would be thrown out."""
+    smallest = np.inf
+    zero = 1e4 * floor
     for i in range(a, a + m):
-        work[i] = abs(y[i] - icpt - slope * x[i]) * sw[i]
+        r = abs(y[i] - icpt - slope * x[i]) * sw[i]
+        work[i] = r
+        if r > zero:
+            smallest = min(smallest, r)
     s = MAD_SCALE * _median(work, a, m)
+    if smallest < np.inf:
+        s = max(s, smallest)
     return max(s, floor)
 
 
@@ -559,6 +573,15 @@ def _ro(a, dtype):
     return a
 
 
+@numba.njit(parallel=True, error_model="numpy", cache=True, nogil=True)
+def _within(idx, n):
+    """Every position in [0, n) (the loops do no bounds checks)."""
+    bad = 0
+    for i in prange(idx.shape[0]):
+        bad += (idx[i] < 0) | (idx[i] >= n)
+    return bad == 0
+
+
 def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     starts = _ro(starts, np.int64)
     K, bid, ask, T = (_ro(z, np.float64) for z in (K, bid, ask, T))
@@ -569,7 +592,9 @@ def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     cp = np.asarray(cp)
     if cp.shape != (n,) or not np.issubdtype(cp.dtype, np.integer):
         raise ValueError(f"cp must be integer codes of shape {(n,)}")
-    cp = _ro(np.where((cp == 1) | (cp == -1), cp, 0), np.int8)
+    if cp.dtype != np.int8:       # the kernels read +1 as a call, -1 as a put, else missing
+        cp = np.where((cp == 1) | (cp == -1), cp, 0).astype(np.int8)
+    cp = _ro(cp, np.int8)
     if starts.ndim != 1 or starts.shape[0] < 1 or starts[0] != 0 or \
             np.any(np.diff(starts) < 0) or starts[-1] > n:
         raise ValueError("starts must rise from 0 to at most the number of rows")
@@ -578,7 +603,7 @@ def _rows_args(starts, order, K, cp, bid, ask, T, own_order=False):
     idx = order if own_order and isinstance(order, np.ndarray) and order.dtype == np.int64 \
         and order.flags.writeable and order.flags.c_contiguous else \
         np.array(order, dtype=np.int64)
-    if idx.shape != (int(starts[-1]),) or (idx.size and (idx.min() < 0 or idx.max() >= n)):
+    if idx.shape != (int(starts[-1]),) or not _within(idx, n):
         raise ValueError("order must hold starts[-1] row positions within the rows")
     return starts, idx, K, cp, bid, ask, T
 

@@ -522,3 +522,29 @@ def test_many_key_combinations_group_by_sorting_and_keep_every_group():
     assert set(out["status"].to_pylist()) == {"too_few_pairs"}
     assert volsweep.implied_forwards(t.take(pa.array(rng.permutation(n))),
                                      by=("a", "b")).equals(out)
+
+
+def test_tick_grid_ties_do_not_collapse_the_scale():
+    # reference: Black-76 (scipy).  Mids on a 0.005 grid sit a quarter tick above or
+    # below the true line; when more than half sit on one side, a MAD of 0 would keep
+    # only those.  Every clean pair must be used.
+    F, D, T = 97.3, 0.975, 0.6
+    strikes = np.arange(55.0, 150.0, 1.0)
+    c, bad = noisy_chain(F, D, T, strikes, np.random.default_rng(3))
+    out = volsweep.implied_forwards(table(c), by=BY)
+    n_bad_pairs = len(set((bad // 2).tolist()))
+    assert out["pairs_used"][0].as_py() >= len(strikes) - n_bad_pairs
+    assert out["parity_residual"][0].as_py() > 0.001        # the quarter ticks
+
+
+def test_kernel_entry_checks_its_arguments():
+    K = np.array([90.0, 90.0, 110.0, 110.0])
+    cp = np.array([1, -1, 1, -1])                      # int64 codes are accepted
+    p = np.array([12.0, 2.0, 3.0, 12.5])
+    T = np.full(4, 0.5)
+    out = kchains.forwards([0, 4], np.arange(4), K, cp, p, p, T, quoted=False, min_pairs=2)
+    assert kchains.NAMES[out["status"][0]] == "ok"
+    with pytest.raises(ValueError, match="order"):
+        kchains.forwards([0, 4], np.array([0, 1, 2, 4]), K, cp, p, p, T, quoted=False)
+    with pytest.raises(ValueError, match="starts"):
+        kchains.forwards([0, 5], np.arange(4), K, cp, p, p, T, quoted=False)
