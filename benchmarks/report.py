@@ -23,6 +23,8 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call; with
   ``--before CHECKOUT``, the previous code version and this one taking turns in two child
   processes, ``benchmarks.compare``);
+* smiles (``benchmarks.bench_smiles``): ``fit_smiles`` on 9,600 slices x 100 quotes
+  against one table-level ``implied_vol`` pass on the same rows, taking turns;
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -46,7 +48,7 @@ import time
 import numba
 import numpy as np
 
-from benchmarks import _cases, bench_greeks, bench_implied, bench_price, compare
+from benchmarks import _cases, bench_greeks, bench_implied, bench_price, bench_smiles, compare
 from benchmarks._timing import median_times
 from volsweep.kernel import registry
 
@@ -364,6 +366,7 @@ def main(argv=None, rows: int | None = None) -> int:
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
     small_batch_section(args.repeats, before=args.before)
+    bench_smiles.report(repeats=args.repeats)
     latency_section()
     if args.asm:
         asm_section()

@@ -6,7 +6,8 @@ k = ln(K/F) as
 
     w(k) = a + b (rho (k - m) + sqrt((k - m)^2 + sigma^2)).
 
-Calibration (per slice, the same fixed work for every slice, so slices run in parallel):
+Calibration (per slice, a fixed amount of work apart from the polish's convergence stop;
+slices run in parallel, in tasks of 32 with their own scratch):
 
 1. Quasi-explicit step (De Marco and Martini, "Quasi-explicit calibration of Gatheral's
    SVI model", 2009).  With y = (k - m)/sigma and z = sqrt(y^2 + 1), w = a + d y + c z
@@ -19,12 +20,15 @@ Calibration (per slice, the same fixed work for every slice, so slices run in pa
    clamped one-dimensional minimum): a few dozen flops once the sums are known.  Unlike
    De Marco and Martini we leave ``a`` unbounded, so that slices with a < 0 (such as
    Gatheral and Jacquier's example of butterfly arbitrage) are reproduced.
-2. Outer search over (m, log sigma): the reduced objective on a fixed 4 x 3 grid scaled to
+2. Outer search over (m, log sigma), on at most ``SEARCH_QUOTES`` quotes evenly spread
+   over the slice: the reduced objective on a fixed ``GRID_M`` x ``GRID_S`` grid scaled to
    the slice's log-moneyness range, then ``NM_ITERATIONS`` Nelder-Mead iterations from the
    best grid point (a fixed count).
-3. Polish: ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on all five parameters (a step
-   is taken only when it lowers the objective and keeps b >= 0, |rho| < 1, sigma > 0 and
-   the wing slopes <= 2), so that exact SVI vols are reproduced to rounding error.
+3. Polish over all the quotes: at most ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on
+   all five parameters (a step is taken only when it does not raise the objective and
+   keeps b >= 0, |rho| < 1, sigma > 0 and the wing slopes <= 2; the iteration stops once
+   a step changes no parameter by more than 1e-10 relative), so that exact SVI vols are
+   reproduced to rounding error.
 
 The objective is in total variance, each quote weighted by u_i / (iv_i^2 T^2), which makes
 it the first-order expansion of sum u_i (fitted vol - iv_i)^2 (dw = 2 iv T d(iv)); u_i is
@@ -45,9 +49,11 @@ search between the neighbours of the smallest grid point.
 has g < 0 (or w <= 0) somewhere on the grid, it is blended towards the flat smile of the
 same at-the-money total variance, w_theta = (1 - theta) w + theta w(0) (itself a raw SVI:
 a' = (1 - theta) a + theta w(0), b' = (1 - theta) b), and theta is the smallest found by
-``BLEND_STEPS`` bisection steps with g >= 0 at every grid point (theta = 1, a flat smile,
-has g = 1).  So min g >= 0 on the documented grid is guaranteed, at the cost of a flatter
-smile; the wing slopes stay <= 2, so g tends to 1/4 - slope^2/16 >= 0 beyond the range.
+``BLEND_STEPS`` bisection steps that passes the butterfly check (``_free``: w > 0 and
+g >= 0 at every grid point, and the refined minimum >= 0; theta = 1, a flat smile, has
+g = 1).  Then Levenberg-Marquardt steps refit it, each accepted only if it still passes.
+So ``butterfly_arbitrage`` is false after it, at the cost of a flatter smile; the wing
+slopes stay <= 2, so g tends to 1/4 - slope^2/16 >= 0 beyond the range.
 
 Calendar arbitrage: a slice whose total variance lies below that of the previous fitted
 slice of the same surface (an earlier expiry) at some point of an evenly spaced grid of
@@ -64,7 +70,7 @@ import numba
 import numpy as np
 from numba import prange
 
-from . import _jit  # noqa: F401  (installs the kernel cache locators)
+from . import _jit  # noqa: F401  (imported for its side effect: the kernel cache locators)
 
 # Slice statuses
 OK = 0
