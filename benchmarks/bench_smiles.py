@@ -75,7 +75,7 @@ def report(n_slices: int = 9600, n_quotes: int = 100, repeats: int = 7) -> dict:
     chain = make_chain(n_slices, n_quotes)
     t = median_times(runs(chain), repeats, warmup=True)
     load = os.getloadavg()
-    print(f"\nSmiles: {n_slices:,} slices x {n_quotes} quotes ({chain.num_rows:,} rows), "
+    print(f"\n3c. Smiles: {n_slices:,} slices x {n_quotes} quotes ({chain.num_rows:,} rows), "
           f"table-level, median of {repeats} rounds taking turns (load average "
           f"{load[0]:.2f} {load[1]:.2f} {load[2]:.2f})")
     base = t["implied_vol"]

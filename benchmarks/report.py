@@ -28,6 +28,8 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   (``benchmarks/bench_risk.py``);
 * the chain operations (``implied_forwards``, ``model_free_variance``) on 1.92M rows
   against one ``implied_vol`` pass on the same rows (``benchmarks.bench_chains``);
+* smiles (``benchmarks.bench_smiles``): ``fit_smiles`` on 9,600 slices x 100 quotes
+  against one table-level ``implied_vol`` pass on the same rows, taking turns;
 * first-call latency in a new process with the cache warm (subprocess);
 * ``--asm``: the hot loops' machine code (packed AVX-512/AVX2 arithmetic, no libm calls),
   compiled afresh in a subprocess because numba does not keep assembly for cached code;
@@ -51,7 +53,8 @@ import time
 import numba
 import numpy as np
 
-from benchmarks import _cases, bench_greeks, bench_implied, bench_price, bench_risk, compare
+from benchmarks import (_cases, bench_greeks, bench_implied, bench_price, bench_risk,
+                        bench_smiles, compare)
 from benchmarks._timing import median_times
 from volsweep.kernel import registry
 
@@ -372,6 +375,7 @@ def main(argv=None, rows: int | None = None) -> int:
     bench_risk.risk_section(min(args.rows, 1_000_000), max(3, args.repeats // 2))
     from benchmarks.bench_chains import chains_section
     chains_section(repeats=args.repeats)     # group operations against one implied-vol pass
+    bench_smiles.report(repeats=args.repeats)
     latency_section()
     if args.asm:
         asm_section()

@@ -6,7 +6,8 @@ k = ln(K/F) as
 
     w(k) = a + b (rho (k - m) + sqrt((k - m)^2 + sigma^2)).
 
-Calibration (per slice, the same fixed work for every slice, so slices run in parallel):
+Calibration (per slice, a fixed amount of work apart from the polish's convergence stop;
+slices run in parallel, in tasks of 32 with their own scratch):
 
 1. Quasi-explicit step (De Marco and Martini, "Quasi-explicit calibration of Gatheral's
    SVI model", 2009).  With y = (k - m)/sigma and z = sqrt(y^2 + 1), w = a + d y + c z
@@ -19,12 +20,15 @@ Calibration (per slice, the same fixed work for every slice, so slices run in pa
    clamped one-dimensional minimum): a few dozen flops once the sums are known.  Unlike
    De Marco and Martini we leave ``a`` unbounded, so that slices with a < 0 (such as
    Gatheral and Jacquier's example of butterfly arbitrage) are reproduced.
-2. Outer search over (m, log sigma): the reduced objective on a fixed 4 x 3 grid scaled to
+2. Outer search over (m, log sigma), on at most ``SEARCH_QUOTES`` quotes evenly spread
+   over the slice: the reduced objective on a fixed ``GRID_M`` x ``GRID_S`` grid scaled to
    the slice's log-moneyness range, then ``NM_ITERATIONS`` Nelder-Mead iterations from the
    best grid point (a fixed count).
-3. Polish: ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on all five parameters (a step
-   is taken only when it lowers the objective and keeps b >= 0, |rho| < 1, sigma > 0 and
-   the wing slopes <= 2), so that exact SVI vols are reproduced to rounding error.
+3. Polish over all the quotes: at most ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on
+   all five parameters (a step is taken only when it does not raise the objective and
+   keeps b >= 0, |rho| < 1, sigma > 0 and the wing slopes <= 2; the iteration stops once
+   a step changes no parameter by more than 1e-10 relative), so that exact SVI vols are
+   reproduced to rounding error.
 
 The objective is in total variance, each quote weighted by u_i / (iv_i^2 T^2), which makes
 it the first-order expansion of sum u_i (fitted vol - iv_i)^2 (dw = 2 iv T d(iv)); u_i is
@@ -37,22 +41,27 @@ Durrleman's condition (Gatheral and Jacquier, "Arbitrage-free SVI volatility sur
 
     g(k) = (1 - k w'/(2w))^2 - (w'^2/4)(1/w + 1/4) + w''/2 >= 0   (and w > 0).
 
-g is evaluated at ``G_POINTS`` points evenly spaced over k in [-R, R], R = max(1,
-1.5 * max|k_i|) over the quotes used, and its smallest value refined by golden-section
-search between the neighbours of the smallest grid point.
+g is evaluated at ``G_POINTS`` points evenly spaced over the checked range of k: the
+range [k_lo, k_hi] of the quotes used (``CHECK_WIDEN`` = 0: not widened); its smallest
+value is refined by golden-section search between the neighbours of the smallest grid
+point.  The fitted wings beyond that range rest on no quote (SVI extends them linearly)
+and are not judged: on the demo data, with a quarter of the width added on each side,
+about a tenth of the slices were flagged, nearly all in that extension.
 
 ``arbitrage_free``: our own construction, not a published region.  When the fitted slice
-has g < 0 (or w <= 0) somewhere on the grid, it is blended towards the flat smile of the
+has g < 0 (or w <= 0) somewhere on the checked range, it is blended towards the flat smile of the
 same at-the-money total variance, w_theta = (1 - theta) w + theta w(0) (itself a raw SVI:
 a' = (1 - theta) a + theta w(0), b' = (1 - theta) b), and theta is the smallest found by
-``BLEND_STEPS`` bisection steps with g >= 0 at every grid point (theta = 1, a flat smile,
-has g = 1).  So min g >= 0 on the documented grid is guaranteed, at the cost of a flatter
-smile; the wing slopes stay <= 2, so g tends to 1/4 - slope^2/16 >= 0 beyond the range.
+``BLEND_STEPS`` bisection steps that passes the butterfly check (``_free``: w > 0 and
+g >= 0 at every grid point, and the refined minimum >= 0; theta = 1, a flat smile, has
+g = 1).  Then Levenberg-Marquardt steps refit it, each accepted only if it still passes.
+So ``butterfly_arbitrage`` is false after it, at the cost of a flatter smile; the wing
+slopes stay <= 2, so g tends to 1/4 - slope^2/16 >= 0 beyond the range.
 
 Calendar arbitrage: a slice whose total variance lies below that of the previous fitted
 slice of the same surface (an earlier expiry) at some point of an evenly spaced grid of
-``G_POINTS`` over [-R, R] (R the larger of the two slices' ranges), by more than 1e-10
-relative.
+``G_POINTS`` over the part of k where both slices are checked, by more than 1e-10
+relative (no flag when the two ranges do not overlap).
 
 Slice statuses (``SLICE_NAMES``; codes stable, append only).  A quote is used when its
 ``ok`` flag is set and its implied vol, strike, forward and time are finite and positive.
@@ -64,7 +73,7 @@ import numba
 import numpy as np
 from numba import prange
 
-from . import _jit  # noqa: F401  (installs the kernel cache locators)
+from . import _jit  # noqa: F401  (imported for its side effect: the kernel cache locators)
 
 # Slice statuses
 OK = 0
@@ -93,6 +102,7 @@ NM_ITERATIONS = 6
 POLISH_ITERATIONS = 12
 SEARCH_QUOTES = 32     # quotes of a slice the outer search uses (evenly spread)
 G_POINTS = 101
+CHECK_WIDEN = 0.0     # the checked range of k: the quotes', widened by this much a side
 GOLDEN_STEPS = 30
 BLEND_STEPS = 40
 LEE_SLOPE = 2.0        # largest wing slope of total variance (Lee's moment formula)
@@ -403,7 +413,7 @@ def _admissible(b, rho, sig):
 
 
 @_njit
-def _polish(k, v, W, o, e, p, scratch, R):
+def _polish(k, v, W, o, e, p, scratch, lo, hi):
     """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place: at most
     ``POLISH_ITERATIONS`` iterations of one pass over the quotes each, ending early once an
     accepted step changes no parameter by more than 1e-10 relative (converged; the
@@ -411,8 +421,8 @@ def _polish(k, v, W, o, e, p, scratch, R):
     point gives its
     objective and, when that is not higher, the normal equations of the next step (kept
     apart until then, so a refused trial costs no second pass).  A trial point is
-    refused without a pass when it leaves the admissible set, and, with R > 0, unless the
-    slice stays free of butterfly arbitrage on [-R, R] (``_free``)."""
+    refused without a pass when it leaves the admissible set, and, with lo < hi, unless the
+    slice stays free of butterfly arbitrage on [lo, hi] (``_free``)."""
     A = scratch[0:25]
     g = scratch[25:30]
     L = scratch[30:55]
@@ -434,7 +444,8 @@ def _polish(k, v, W, o, e, p, scratch, R):
         rho = best[2] + step[2]
         m = best[3] + step[3]
         sig = best[4] + step[4]
-        if not _admissible(b, rho, sig) or (R > 0.0 and not _free(a, b, rho, m, sig, R, gs)):
+        if not _admissible(b, rho, sig) or (lo < hi and not _free(a, b, rho, m, sig, lo, hi,
+                                                                     gs)):
             lam *= 10.0
             continue
         fn = _normal_equations(k, v, W, o, e, a, b, rho, m, sig, A2, g2)
@@ -459,12 +470,12 @@ def _polish(k, v, W, o, e, p, scratch, R):
 
 # ---------------------------------------------------------------------- arbitrage
 @_njit_sums
-def _g_grid(a, b, rho, m, sig, R, gs):
-    """g at the G_POINTS grid points of [-R, R] into gs (NaN where w <= 0)."""
-    h = 2.0 * R / (G_POINTS - 1)
+def _g_grid(a, b, rho, m, sig, lo, hi, gs):
+    """g at the G_POINTS grid points of [lo, hi] into gs (NaN where w <= 0)."""
+    h = (hi - lo) / (G_POINTS - 1)
     ss = sig * sig
     for i in range(G_POINTS):
-        kk = -R + h * i
+        kk = lo + h * i
         x = kk - m
         r = math.sqrt(x * x + ss)
         ir = 1.0 / r
@@ -478,11 +489,11 @@ def _g_grid(a, b, rho, m, sig, R, gs):
 
 
 @_njit
-def _min_g(a, b, rho, m, sig, R, gs):
-    """(smallest g on [-R, R]: the grid's, refined by golden-section search between the
+def _min_g(a, b, rho, m, sig, k_lo, k_hi, gs):
+    """(smallest g on [k_lo, k_hi]: the grid's, refined by golden-section search between the
     neighbours of the smallest grid point; its k; False when w <= 0 at a grid point)."""
-    _g_grid(a, b, rho, m, sig, R, gs)
-    h = 2.0 * R / (G_POINTS - 1)
+    _g_grid(a, b, rho, m, sig, k_lo, k_hi, gs)
+    h = (k_hi - k_lo) / (G_POINTS - 1)
     gmin = np.inf
     imin = 0
     positive = True
@@ -494,9 +505,9 @@ def _min_g(a, b, rho, m, sig, R, gs):
             gmin, imin = gk, i
     if not positive:
         return np.nan, np.nan, False
-    kmin = -R + h * imin
-    lo = -R + h * max(imin - 1, 0)
-    hi = -R + h * min(imin + 1, G_POINTS - 1)
+    kmin = k_lo + h * imin
+    lo = k_lo + h * max(imin - 1, 0)
+    hi = k_lo + h * min(imin + 1, G_POINTS - 1)
     ratio = 0.6180339887498949
     x1 = hi - ratio * (hi - lo)
     x2 = lo + ratio * (hi - lo)
@@ -519,15 +530,15 @@ def _min_g(a, b, rho, m, sig, R, gs):
 
 
 @_njit
-def _free(a, b, rho, m, sig, R, gs):
+def _free(a, b, rho, m, sig, lo, hi, gs):
     """Free of butterfly arbitrage as the flags judge it: w > 0 at every grid point of
-    [-R, R] and the refined smallest g >= 0."""
-    gmin, _, positive = _min_g(a, b, rho, m, sig, R, gs)
+    [lo, hi] and the refined smallest g >= 0."""
+    gmin, _, positive = _min_g(a, b, rho, m, sig, lo, hi, gs)
     return positive and gmin >= 0.0
 
 
 @_njit
-def _blend_free(p, w0, R, gs):
+def _blend_free(p, w0, k_lo, k_hi, gs):
     """Blend p towards the flat smile w0 until it is free of butterfly arbitrage (in
     place): bisection on theta, keeping the upper end free (theta = 1 is: g = 1)."""
     a, b = p[0], p[1]
@@ -535,7 +546,7 @@ def _blend_free(p, w0, R, gs):
     hi = 1.0
     for _ in range(BLEND_STEPS):
         t = 0.5 * (lo + hi)
-        if _free((1.0 - t) * a + t * w0, (1.0 - t) * b, p[2], p[3], p[4], R, gs):
+        if _free((1.0 - t) * a + t * w0, (1.0 - t) * b, p[2], p[3], p[4], k_lo, k_hi, gs):
             hi = t
         else:
             lo = t
@@ -586,7 +597,7 @@ def _weighted_moments(k, v, W, o, e, mom):
 @_njit
 def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
                params, fwd, tex, rmse, atm_vol, atm_skew, min_g, min_g_k, butterfly,
-               used, k_range, status, scratch):
+               used, check_lo, check_hi, status, scratch):
     for j in range(_N_PARAMS):
         params[s, j] = np.nan
     fwd[s] = np.nan
@@ -597,7 +608,8 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     min_g[s] = np.nan
     min_g_k[s] = np.nan
     butterfly[s] = -1
-    k_range[s] = np.nan
+    check_lo[s] = np.nan
+    check_hi[s] = np.nan
     used[s] = 0
     # one pass: the quotes used, compacted into [o, o + nu) of the work arrays (rows are
     # in strike order, so distinct strikes are counted where k changes), and what the
@@ -684,16 +696,20 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     p[4] = sig
     if abs(p[2]) >= 1.0:                     # on an edge |d| = c: keep rho inside (-1, 1)
         p[2] = math.copysign(1.0 - 1e-12, p[2])
-    _polish(k, v, W, o, ee, p, scratch, 0.0)
-    R = max(1.0, 1.5 * max(abs(k_lo), abs(k_hi)))
-    k_range[s] = R
+    _polish(k, v, W, o, ee, p, scratch, 0.0, 0.0)
+    # the checked range: the quotes' range of k (widened by CHECK_WIDEN of its width on
+    # each side)
+    c_lo = k_lo - CHECK_WIDEN * (k_hi - k_lo)
+    c_hi = k_hi + CHECK_WIDEN * (k_hi - k_lo)
+    check_lo[s] = c_lo
+    check_hi[s] = c_hi
     gs = scratch[_SCRATCH_FIXED:_SCRATCH_FIXED + G_POINTS]
-    if arbitrage_free and not _free(p[0], p[1], p[2], p[3], p[4], R, gs):
+    if arbitrage_free and not _free(p[0], p[1], p[2], p[3], p[4], c_lo, c_hi, gs):
         w0 = total_variance(0.0, p[0], p[1], p[2], p[3], p[4])
         if not w0 > 0.0:
             w0 = sv
-        _blend_free(p, w0, R, gs)
-        _polish(k, v, W, o, ee, p, scratch, R)     # refit, staying free of arbitrage
+        _blend_free(p, w0, c_lo, c_hi, gs)
+        _polish(k, v, W, o, ee, p, scratch, c_lo, c_hi)   # refit, staying free of it
     finite = True
     for j in range(_N_PARAMS):
         finite = finite and abs(p[j]) < np.inf
@@ -709,7 +725,7 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
         atm_vol[s] = math.sqrt(w0 / t_s)
         w1 = b * (rho - m / math.sqrt(m * m + sig * sig))
         atm_skew[s] = w1 / (2.0 * math.sqrt(w0 * t_s))
-    gmin, gk, positive = _min_g(a, b, rho, m, sig, R, gs)
+    gmin, gk, positive = _min_g(a, b, rho, m, sig, c_lo, c_hi, gs)
     min_g[s] = gmin
     min_g_k[s] = gk
     butterfly[s] = 0 if positive and gmin >= 0.0 else 1
@@ -723,24 +739,26 @@ _SLICES_PER_TASK = 32
 
 @_njit_par
 def _fit_all(offsets, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W, params, fwd,
-             tex, rmse, atm_vol, atm_skew, min_g, min_g_k, butterfly, used, k_range,
-             status, scratch):
+             tex, rmse, atm_vol, atm_skew, min_g, min_g_k, butterfly, used, check_lo,
+             check_hi, status, scratch):
     n = offsets.shape[0] - 1
     for task in prange((n + _SLICES_PER_TASK - 1) // _SLICES_PER_TASK):
         for s in range(task * _SLICES_PER_TASK, min(n, (task + 1) * _SLICES_PER_TASK)):
             _fit_slice(s, offsets[s], offsets[s + 1], lnk, iv, spread, ok, F, T,
                        arbitrage_free, k, v, W, params, fwd, tex, rmse, atm_vol, atm_skew,
-                       min_g, min_g_k, butterfly, used, k_range, status, scratch[task])
+                       min_g, min_g_k, butterfly, used, check_lo, check_hi, status,
+                       scratch[task])
 
 
 @_njit_sums
-def _below(params, s, j, R, gs):
-    """Total variance of slice s minus that of slice j at the grid points of [-R, R]."""
-    h = 2.0 * R / (G_POINTS - 1)
+def _below(params, s, j, lo, hi, gs):
+    """Total variance of slice s minus that of slice j (plus 1e-10 of the latter) at the
+    grid points of [lo, hi]."""
+    h = (hi - lo) / (G_POINTS - 1)
     a1, b1, r1, m1, q1 = params[s, 0], params[s, 1], params[s, 2], params[s, 3], params[s, 4]
     a0, b0, r0, m0, q0 = params[j, 0], params[j, 1], params[j, 2], params[j, 3], params[j, 4]
     for i in range(G_POINTS):
-        kk = -R + h * i
+        kk = lo + h * i
         x1 = kk - m1
         x0 = kk - m0
         w1 = a1 + b1 * (r1 * x1 + math.sqrt(x1 * x1 + q1 * q1))
@@ -749,7 +767,7 @@ def _below(params, s, j, R, gs):
 
 
 @_njit_par
-def _calendar_all(surface, params, status, k_range, calendar, scratch):
+def _calendar_all(surface, params, status, check_lo, check_hi, calendar, scratch):
     n = surface.shape[0]
     for task in prange((n + _SLICES_PER_TASK - 1) // _SLICES_PER_TASK):
         gs = scratch[task, _SCRATCH_FIXED:_SCRATCH_FIXED + G_POINTS]
@@ -763,7 +781,11 @@ def _calendar_all(surface, params, status, k_range, calendar, scratch):
                 j -= 1
             if j < 0 or surface[j] != surface[s]:
                 continue
-            _below(params, s, j, max(k_range[s], k_range[j]), gs)
+            lo = max(check_lo[s], check_lo[j])     # where both slices are checked
+            hi = min(check_hi[s], check_hi[j])
+            if not lo < hi:
+                continue
+            _below(params, s, j, lo, hi, gs)
             for i in range(G_POINTS):
                 if gs[i] < 0.0:
                     calendar[s] = 1
@@ -783,7 +805,8 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     expiry order).  Returns a dict of per-slice arrays: ``params`` (n, 5: a, b, rho, m,
     sigma), ``forward``, ``expiry_years``, ``rmse_iv``, ``atm_vol``, ``atm_skew``,
     ``min_g``, ``min_g_k``, ``butterfly`` and ``calendar`` (int8: 1 yes, 0 no, -1 no
-    value), ``quotes_used`` (int64), ``k_range`` (R), ``status`` (int8, ``SLICE_NAMES``).
+    value), ``quotes_used`` (int64), ``check_lo`` and ``check_hi`` (the checked range of
+    k), ``status`` (int8, ``SLICE_NAMES``).
     ``work``: optionally three writable float64 arrays of the rows' length, overwritten
     (the caller's preallocated scratch).  Inputs are not modified.
     """
@@ -806,7 +829,7 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
         "expiry_years": np.empty(ns), "rmse_iv": np.empty(ns), "atm_vol": np.empty(ns),
         "atm_skew": np.empty(ns), "min_g": np.empty(ns), "min_g_k": np.empty(ns),
         "butterfly": np.empty(ns, np.int8), "quotes_used": np.empty(ns, np.int64),
-        "k_range": np.empty(ns), "status": np.empty(ns, np.int8),
+        "check_lo": np.empty(ns), "check_hi": np.empty(ns), "status": np.empty(ns, np.int8),
         "calendar": np.empty(ns, np.int8),
     }
     if ns == 0:
@@ -823,9 +846,10 @@ def fit_slices(offsets, lnk, iv, spread, ok, F, T, surface, arbitrage_free=False
     _fit_all(offsets, lnk, iv, spread, ok, F, T, bool(arbitrage_free), k, v, W,
              out["params"], out["forward"], out["expiry_years"], out["rmse_iv"],
              out["atm_vol"], out["atm_skew"], out["min_g"], out["min_g_k"],
-             out["butterfly"], out["quotes_used"], out["k_range"], out["status"], scratch)
-    _calendar_all(surface, out["params"], out["status"], out["k_range"], out["calendar"],
-                  scratch)
+             out["butterfly"], out["quotes_used"], out["check_lo"], out["check_hi"],
+             out["status"], scratch)
+    _calendar_all(surface, out["params"], out["status"], out["check_lo"], out["check_hi"],
+                  out["calendar"], scratch)
     return out
 
 

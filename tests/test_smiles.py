@@ -141,10 +141,9 @@ def test_published_example_is_flagged_and_arbitrage_free_removes_it():
     assert free["durrleman_min_g"] >= 0.0
     p = {"a": free["svi_a"], "b": free["svi_b"], "rho": free["svi_rho"], "m": free["svi_m"],
          "sigma": free["svi_sigma"]}
-    # g >= 0 over the checked range, by mpmath on a grid of our own (offset from the
-    # kernel's), and w > 0
-    R = max(1.0, 1.5 * 1.5)
-    ks = np.linspace(-R, R, 157)
+    # g >= 0 over the checked range (the quotes' k: [-1.5, 1.5]), by mpmath on a grid of
+    # our own (offset from the kernel's), and w > 0
+    ks = np.linspace(-1.5, 1.5, 157)
     assert min(g_mpmath(k, p) for k in ks) >= -1e-12
     assert np.all(svi_w(ks, **p) > 0)
     assert free["rmse_iv"] > r["rmse_iv"]          # the cost in fit
