@@ -145,6 +145,29 @@ def models_section(n: int, repeats: int) -> dict:
     return r
 
 
+def american_section(n: int, repeats: int, n_amer: int = 20_000) -> dict:
+    """American exercise (registry ``AMERICAN``), all taking turns in the same rounds:
+    its price at the accurate and the fast setting against the European price of the same
+    model (goal at the accurate setting: at least 1/300 of it), and its implied vol
+    against its price (goal: at least 1/5)."""
+    runs, rows = _cases.american_runs(n, n_amer)
+    t = _rounds(runs, repeats)
+    r = {k: rows[k] / v for k, v in t.items()}
+    print(f"\n1c. American exercise, {n_amer:,} rows ({n:,} for the European price), "
+          f"{numba.get_num_threads()} threads, load average {os.getloadavg()[0]:.2f} "
+          "(contracts/s; ratios within this run)")
+    for name in registry.AMERICAN:
+        eu = r[f"{name} european price"]
+        acc = r[f"{name} american price accurate"]
+        fast = r[f"{name} american price fast"]
+        iv = r[f"{name} american iv"]
+        print(f"  {name}: european price {eu / 1e6:.1f} M/s; american price accurate "
+              f"{acc / 1e3:.1f} k/s (1/{eu / acc:.0f} of european), fast {fast / 1e3:.1f} "
+              f"k/s (1/{eu / fast:.0f}); american iv {iv / 1e3:.1f} k/s (iv/price "
+              f"{iv / acc:.3f})")
+    return r
+
+
 def alternatives_section(n: int, repeats: int, brentq_rows: int = 2000) -> None:
     d = _cases.make_data(n)
     runs, skipped = {}, []
@@ -361,13 +384,23 @@ def main(argv=None, rows: int | None = None) -> int:
     ap.add_argument("--cold", action="store_true", help="time a cold compile (minutes)")
     ap.add_argument("--before", metavar="CHECKOUT", help="another checkout with its own "
                     ".venv: section 3b measures both code versions taking turns")
+    ap.add_argument("--american-only", action="store_true",
+                    help="only section 1c (American exercise)")
+    ap.add_argument("--american-rows", type=int, default=20_000)
     args = ap.parse_args(argv)
     import volsweep
 
+    if args.american_only:
+        print(f"volsweep benchmark report, "
+              f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
+        american_section(args.rows, args.repeats, args.american_rows)
+        print(f"   machine: {machine()}")
+        return 0
     volsweep.warmup()
     print(f"volsweep benchmark report, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     kernel_section(args.rows, args.repeats)
     models_section(args.rows, args.repeats)
+    american_section(args.rows, args.repeats, args.american_rows)
     print(f"   machine: {machine()}")
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)

@@ -43,7 +43,8 @@ class CliError(Exception):
 
 # the flags that set the options an OptionError names (bindings/_columns.py)
 CLI_WORDS = {"columns": "--map", "as_of": "--as-of", "quotes": "--quotes",
-             "keep": "--keep-columns", "unmap": "--map {name}="}
+             "keep": "--keep-columns", "exercise": "--exercise ",
+             "unmap": "--map {name}="}
 
 
 def _mapping(pairs) -> dict:
@@ -262,7 +263,7 @@ def cmd_price(args) -> int:
     columns = _mapping(args.map)
     source = _open(args, columns)
     priced = _planned(prepare, "price", source.schema, model=args.model, columns=columns,
-                      as_of=args.as_of)
+                      as_of=args.as_of, exercise=args.exercise)
     return _stream(args, source, priced, priced.out_schema, "priced",
                    dictionary_columns(priced.out_schema), (priced.plan.source["vol"],))
 
@@ -303,7 +304,7 @@ def cmd_sweep(args) -> int:
 
     options = _sweep_options(args)
     source = _open(args, options["columns"])
-    plan = _planned(SweepPlan.build, source.schema, **options)
+    plan = _planned(SweepPlan.build, source.schema, exercise=args.exercise, **options)
     return _stream(args, source, plan.transform, plan.out_schema, "swept", plan.dictionary,
                    plan.vol_columns)
 
@@ -425,6 +426,16 @@ def _model_arg(p) -> None:
                    help=f"{lines.replace('%', '%%')} (default: %(default)s)")
 
 
+def _exercise_arg(p) -> None:
+    """--exercise: the exercise style of every row (the registry's American entries)."""
+    from volsweep.kernel.registry import AMERICAN, EXERCISES
+
+    p.add_argument("--exercise", type=str.lower, choices=list(EXERCISES), default=None,
+                   help="exercise style of every row: american (models "
+                   f"{', '.join(AMERICAN)}) or european; default: each row's style from an "
+                   "'exercise' column (american/european) if IN has one, else european")
+
+
 def _sweep_args(p) -> None:
     import volsweep
 
@@ -471,6 +482,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "CSV) into the Parquet file OUT, streaming batch by batch.")
     _io_args(pr)
     _model_arg(pr)
+    _exercise_arg(pr)
     _map_args(pr)
     pr.set_defaults(func=cmd_price)
 
@@ -485,6 +497,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=_SWEEP_EPILOG)
     _io_args(sw)
     _sweep_args(sw)
+    _exercise_arg(sw)
     sw.set_defaults(func=cmd_sweep)
 
     bf = sub.add_parser(
