@@ -84,7 +84,8 @@ def cmd_risk(args) -> int:
     try:
         res = cli._planned(run_scenarios, source.schema, source.batches(), model=args.model,
                            by=by, spot_shocks=spot, vol_shocks=vol, days=args.days,
-                           columns=columns, as_of=args.as_of, progress=progress)
+                           columns=columns, as_of=args.as_of, progress=progress,
+                           exercise=args.exercise)
     finally:
         progress.close()
     grid = res.table
@@ -133,6 +134,7 @@ def add_parser(sub) -> None:
         epilog=_EPILOG)
     cli._io_args(p)
     cli._model_arg(p)
+    cli._exercise_arg(p)
     p.add_argument("--by", default="underlying", metavar="LIST",
                    help="group columns, comma-separated, or none for the whole book "
                    "(default: underlying)")

@@ -26,7 +26,6 @@ from volsweep.kernel import risk as _risk
 from volsweep.kernel import status as _status
 from volsweep.kernel.registry import DEFAULT_MODEL
 
-from ._columns import KNOWN_NAMES as _KNOWN
 from ._columns import ColumnPlan, OptionError, _to_float64, _value_type
 from ._input import as_batches
 from ._output import status_column
@@ -42,7 +41,6 @@ DEFAULT_SPOT_SHOCKS = tuple(k / 100 for k in range(-10, 11))
 DEFAULT_VOL_SHOCKS = tuple(k / 100 for k in range(-3, 4))
 _DAYS_PER_YEAR = 365.0          # ACT/365F, as the expiry columns
 _COUNT_COLUMNS = ("rows", "rows_left_out")
-_EXERCISE = "exercise"          # an exercise-style column (see _no_exercise_column)
 
 
 # ------------------------------------------------------------------ inputs
@@ -55,7 +53,7 @@ def _split_columns(columns):
     if not isinstance(columns, Mapping):
         raise TypeError("columns= must be a dict of {our input name: your column name}, "
                         f"got {type(columns).__name__}")
-    own = set(POSITION_INPUTS) | ({_EXERCISE} - set(_KNOWN))
+    own = set(POSITION_INPUTS)
     rest = {k: v for k, v in columns.items() if k not in own}
     pos = {k: v for k, v in columns.items() if k in own}
     for key, value in pos.items():
@@ -65,22 +63,8 @@ def _split_columns(columns):
     return rest, pos
 
 
-def _no_exercise_column(schema: pa.Schema, pos: dict) -> None:
-    """Refuse a book that says a row is American where the column plan does not read
-    exercise styles: valuing such rows as European would be silently wrong."""
-    if _EXERCISE in _KNOWN:
-        return                        # the column plan reads it (the model decides)
-    col = pos.get(_EXERCISE, _EXERCISE)
-    if col is not None and col in schema.names:
-        raise OptionError("columns", "the input has an exercise-style column {col!r}, but "
-                          "position risk values European exercise only; map it to no "
-                          "column to value every row as European ({unmap})", col=col,
-                          name=_EXERCISE)
-
-
 def _position_sources(schema: pa.Schema, pos: dict) -> dict:
     """position input -> source column, checked against ``schema``."""
-    _no_exercise_column(schema, pos)
     names = schema.names
     out = {}
     for name, (default, doc) in POSITION_INPUTS.items():
@@ -227,7 +211,7 @@ def _greek_request(which):
 
 def position_greeks(data, by=("underlying",), which=None, model: str = DEFAULT_MODEL,
                     units: str = "raw", columns: dict | None = None, *, as_of=None,
-                    per_row: bool = False) -> pa.Table:
+                    per_row: bool = False, exercise: str | None = None) -> pa.Table:
     """Position Greeks (Greek x quantity x multiplier), cash delta and cash gamma, summed
     per ``by`` key.
 
@@ -237,17 +221,18 @@ def position_greeks(data, by=("underlying",), which=None, model: str = DEFAULT_M
     nothing), then ``position_<greek>`` for each Greek of ``which`` and ``cash_delta``,
     ``cash_gamma`` (where delta, gamma are asked for).  ``per_row=True`` returns the
     per-row values instead: every input column, the same value columns and ``status``.
+    ``exercise``: as for ``greeks`` (American exercise: ``model="bsm"``).
     """
     schema, batches = as_batches(data)
     rest, pos = _split_columns(columns)
     plan = ColumnPlan.build(schema, model=model, columns=rest, need_vol=True,
-                            need_quote=False, as_of=as_of)
+                            need_quote=False, as_of=as_of, exercise=exercise)
     sources = _position_sources(schema, pos)
     mapped = {v for v in (rest or {}).values() if v is not None and v in schema.names}
     used = list(dict.fromkeys(list(plan.source.values()) + sorted(mapped)))
     sub_schema = pa.schema([schema.field(c) for c in used])
     prep = prepare("greeks", sub_schema, model=model, which=_greek_request(which),
-                   units=units, columns=rest, as_of=as_of)
+                   units=units, columns=rest, as_of=as_of, exercise=exercise)
     names = prep.greeks
     values = [f"position_{g}" for g in names]
     values += [c for g, c in (("delta", "cash_delta"), ("gamma", "cash_gamma")) if g in names]
@@ -347,13 +332,12 @@ class ScenarioResult:
 
 
 def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, columns,
-                  as_of, progress) -> ScenarioResult:
+                  as_of, progress, exercise=None) -> ScenarioResult:
     """``scenarios`` over (schema, batches), with the status counts of the rows."""
-    entry = _registry.model(model)
-    pricer = _risk.pricer_of(entry.name, entry.exercise)
+    european = _registry.model(model)
     ds = _shocks(DEFAULT_SPOT_SHOCKS if spot_shocks is None else spot_shocks, "spot_shocks")
     dv = _shocks(DEFAULT_VOL_SHOCKS if vol_shocks is None else vol_shocks, "vol_shocks")
-    if entry.vol == "lognormal" and np.any(ds <= -1.0):
+    if european.vol == "lognormal" and np.any(ds <= -1.0):
         raise ValueError(f"spot_shocks= must be > -1 (-100%) under model {model!r}, whose "
                          f"underlying is positive; got {min(ds)!r}")
     try:
@@ -364,14 +348,16 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
         raise ValueError(f"days= must be a finite number >= 0, got {days!r}")
     rest, pos = _split_columns(columns)
     plan = ColumnPlan.build(schema, model=model, columns=rest, need_vol=True,
-                            need_quote=False, as_of=as_of)
+                            need_quote=False, as_of=as_of, exercise=exercise)
+    entry = plan.entry          # the registry entry with the exercise style asked for
+    pricer = _risk.pricer_of(entry.name, entry.exercise)
     sources = _position_sources(schema, pos)
     out_names = ("spot_shock", "vol_shock", "pnl", "rows", "rows_left_out",
                  "rows_shock_invalid")
     by = _check_by(by, schema, out_names)
     by_name = {x.name: x for x in entry.extras}
     read = [by_name[name] for name in pricer.extras]          # as X1, X2
-    load_kernel(entry.name, "price")
+    load_kernel(entry.name, "price", exercise=entry.exercise)
     parts = {k: [] for k in ("U", "K", "T", "D", "X1", "X2", "vol", "cp", "st", "w")}
     keys = {c: [] for c in by}
     for batch in batches:
@@ -476,7 +462,8 @@ def load_kernel_scenarios(model: str, exercise: str = "european") -> None:
 
 def scenarios(data, model: str = DEFAULT_MODEL, by=("underlying",),
               spot_shocks=None, vol_shocks=None, days=0.0,
-              columns: dict | None = None, *, as_of=None, progress=None) -> pa.Table:
+              columns: dict | None = None, *, as_of=None, progress=None,
+              exercise: str | None = None) -> pa.Table:
     """P&L of every group under a grid of spot and vol shocks, by full revaluation.
 
     One row per (group, spot shock, vol shock), groups in the order of their first row,
@@ -488,9 +475,12 @@ def scenarios(data, model: str = DEFAULT_MODEL, by=("underlying",),
     -10% to +10% by 1%); ``vol_shocks``: absolute (0.01 = one vol point; a normal vol's
     units under bachelier; None: -0.03 to +0.03 by 0.01); ``days``: calendar days the
     valuation moves forward (>= 0).  ``progress``: None, or an object whose
-    ``update(n)`` is told of the rows revalued (e.g. a tqdm bar).
+    ``update(n)`` is told of the rows revalued (e.g. a tqdm bar).  ``exercise``: as for
+    ``price``: "american" or "european" for every row, or None for each row's style from
+    an ``exercise`` column (European without one); American rows are revalued by the
+    American price (``model="bsm"``), a boundary solve per revaluation.
     """
     schema, batches = as_batches(data)
     return run_scenarios(schema, batches, model=model, by=by, spot_shocks=spot_shocks,
                          vol_shocks=vol_shocks, days=days, columns=columns, as_of=as_of,
-                         progress=progress).table
+                         progress=progress, exercise=exercise).table

@@ -57,6 +57,7 @@ from numba import njit, prange
 
 from . import _args
 from ._jit import BLOCK, FASTMATH, loop, rows, scalar, specialise
+from .american import american_bsm_price
 from .bachelier import bachelier_price
 from .black import black_price
 from .special import INF, NAN, exp
@@ -77,6 +78,17 @@ def _bsm_value(S, K, T, D, q, X2, vol, cp):
     f = S * exp(-q * T) / D                       # as black.bsm_inputs
     p = black_price(f if f > 0.0 else 1.0, K, vol * math.sqrt(T), D, cp)
     return p if (f > 0.0 and f < INF) else NAN
+
+
+@scalar
+def _american_value(S, K, T, D, q, ex, vol, cp):
+    """BSM with the row's exercise style: American (kernel/american.py at its accurate
+    setting, r = -ln(D)/T) where the flag ``ex`` is not 0, else the European value.  Each
+    American revaluation is a boundary solve (microseconds, not nanoseconds)."""
+    eu = _bsm_value(S, K, T, D, q, ex, vol, cp)
+    if ex == 0.0 or not (eu == eu):
+        return eu
+    return american_bsm_price(S, K, T, -math.log(D) / T, q, vol, cp)
 
 
 @scalar
@@ -112,11 +124,10 @@ class ScenarioPricer:
 
 
 # One entry per (model name, exercise style) of kernel/registry (tests/test_risk.py checks
-# every European model has one).  A model priced by another scalar is one more entry: an
-# American price, say, as ("bsm", "american") with extras ("div_yield", "exercise"), its
-# value computing r = -ln(D)/T and pricing a row flagged European with black_price.
+# every registry entry has one, reading its extra inputs).
 PRICERS = {
     ("bsm", "european"): ScenarioPricer(_bsm_value, _payoff, ("div_yield",)),
+    ("bsm", "american"): ScenarioPricer(_american_value, _payoff, ("div_yield", "exercise")),
     ("black76", "european"): ScenarioPricer(_black76_value, _payoff, ("shift",)),
     ("bachelier", "european"): ScenarioPricer(_bachelier_value, _payoff, ()),
 }

@@ -578,16 +578,40 @@ def test_an_overflowing_contribution_is_counted_not_summed():
     assert out[0]["pnl"] == alone["pnl"].to_pylist()[0]
 
 
-def test_an_exercise_column_is_not_silently_valued_as_european():
-    # common practice: an American option is worth at least its European twin, so valuing
-    # rows marked American as European would understate them; the book must say so
-    book = _book("bsm", n=4).append_column("exercise", pa.array(["american"] * 4))
-    if "exercise" in volsweep._columns.KNOWN_NAMES:
-        pytest.skip("the column plan reads exercise styles in this build")
-    for fn in (volsweep.scenarios, volsweep.position_greeks):
-        with pytest.raises(volsweep.OptionError, match="exercise"):
-            fn(book)
-        fn(book, columns={"exercise": None})          # said to be European: accepted
+def test_american_rows_are_revalued_by_the_american_price():
+    # outside source: the Crank-Nicolson reference of tests/test_american.py (Richardson
+    # extrapolated; its convergence is shown there), at the base and every shocked point
+    from test_american import _reference
+
+    S, K, T, r, q, v = 100.0, 100.0, 0.5, 0.05, 0.0, 0.3
+    book = pa.table({"underlying": ["KELP", "KELP"], "spot": [S, S], "strike": [K, K],
+                     "expiry_years": [T, T], "rate": [r, r], "div_yield": [q, q],
+                     "is_call": [False, False], "vol": [v, v], "quantity": [3.0, 3.0],
+                     "multiplier": [100.0, 100.0], "exercise": ["American", "european"]})
+    ds, dv = [-0.05, 0.05], [0.0, 0.02]
+    out = volsweep.scenarios(book, by=("exercise",), spot_shocks=ds, vol_shocks=dv)
+    assert out["exercise"].to_pylist() == ["American"] * 4 + ["european"] * 4
+    base = _reference(S, K, T, r, q, v, -1, n=1000)
+    am = out.slice(0, 4).to_pylist()
+    for row in am:
+        want = 300.0 * (_reference(S * (1 + row["spot_shock"]), K, T, r, q,
+                                   v + row["vol_shock"], -1, n=1000) - base)
+        assert abs(row["pnl"] - want) <= 300.0 * 2e-6 * K, (row, want)
+    # the European row is the European grid (the same book without the column)
+    eu = volsweep.scenarios(book.slice(1).drop_columns(["exercise"]), by=(),
+                            spot_shocks=ds, vol_shocks=dv)
+    assert out.slice(4)["pnl"].to_pylist() == eu["pnl"].to_pylist()
+    # and the American put's early exercise shows: its loss on the rise is larger
+    assert am[2]["pnl"] < out.slice(4).to_pylist()[2]["pnl"]
+    # exercise= for every row, and position Greeks through the American Greeks
+    every = volsweep.scenarios(book.drop_columns(["exercise"]), by=(), spot_shocks=ds,
+                               vol_shocks=dv, exercise="american")
+    np.testing.assert_allclose(every["pnl"].to_numpy(),
+                               2 * out.slice(0, 4)["pnl"].to_numpy(), rtol=1e-12)
+    pg = volsweep.position_greeks(book, by=("exercise",), which=["delta"])
+    g = volsweep.greeks(book.select(["spot", "strike", "expiry_years", "rate", "div_yield",
+                                     "is_call", "vol", "exercise"]), which=["delta"])
+    assert pg["position_delta"].to_pylist() == [300.0 * d for d in g["delta"].to_pylist()]
 
 
 def test_a_book_with_columns_named_like_greek_outputs_is_read(tmp_path):
