@@ -40,7 +40,7 @@ from ._columns import OptionError, numeric_columns
 from .atomic_parquet import stale_temps
 from .file_errors import StreamError, one_line
 from .group_backfill import (GROUP_OPERATIONS, complete as group_complete, group_options,
-                             group_stamp, run_group, write_group_table)
+                             group_stamp, run_group, stamped_rows, write_group_table)
 from .input_files import DEFAULT_BATCH_ROWS, data_files, open_input
 from .status_counts import count_statuses
 from .stream_to_parquet import stream_to_parquet
@@ -108,17 +108,11 @@ def _source_rows(files) -> int | None:
 def _complete_rows(target: str, files, stamp: bytes) -> int | None:
     """Rows of a committed ``target`` if it is complete for ``files`` and was made with the
     same options (``stamp``), else None (then it is made again and replaced atomically)."""
-    if not os.path.exists(target):
-        return None
-    try:
-        md = pq.read_metadata(target)
-        made_with = (pq.read_schema(target).metadata or {}).get(SWEEP_STAMP_KEY)
-    except Exception:   # unreadable: redo it
-        return None
-    if made_with != stamp:
+    rows = stamped_rows(target, SWEEP_STAMP_KEY, stamp)
+    if rows is None:
         return None
     want = _source_rows(files)
-    return md.num_rows if want is None or want == md.num_rows else None
+    return rows if want is None or want == rows else None
 
 
 def _limit_threads() -> int:

@@ -113,16 +113,22 @@ def group_stamp(operation: str, options: dict, source_rows) -> bytes:
                            version=volsweep.__version__), sort_keys=True, default=str).encode()
 
 
-def complete(target: str, stamp: bytes):
-    """Rows of a committed ``target`` made with ``stamp``, else None."""
+def stamped_rows(target: str, key: bytes, stamp: bytes):
+    """Rows of a committed Parquet ``target`` whose schema metadata holds ``stamp`` under
+    ``key``, else None (missing, unreadable or made otherwise: then it is made again)."""
     if not os.path.exists(target):
         return None
     try:
         md = pq.read_metadata(target)
-        made_with = (pq.read_schema(target).metadata or {}).get(GROUP_STAMP_KEY)
+        made_with = (pq.read_schema(target).metadata or {}).get(key)
     except Exception:   # unreadable: redo it
         return None
     return md.num_rows if made_with == stamp else None
+
+
+def complete(target: str, stamp: bytes):
+    """Rows of a committed group-operation ``target`` made with ``stamp``, else None."""
+    return stamped_rows(target, GROUP_STAMP_KEY, stamp)
 
 
 def write_group_table(table: pa.Table, dst: str, stamp: bytes) -> None:

@@ -5,7 +5,6 @@ synthetic history against the forwards it was made from, and the research view."
 import datetime as dt
 import importlib
 import os
-import sys
 
 import numpy as np
 import pyarrow as pa
@@ -22,7 +21,7 @@ bf = importlib.import_module("volsweep.dask_backfill")
 distributed = pytest.importorskip("distributed")
 pytestmark = pytest.mark.dask
 
-from test_backfill import _KillOnSecondTask  # noqa: E402
+from test_backfill import backfill_killing_a_worker  # noqa: E402
 from test_stream import assert_bits_equal  # noqa: E402
 
 DATES = [dt.date(2031, 3, 10) + dt.timedelta(days=d) for d in range(5)]
@@ -109,22 +108,9 @@ def test_other_options_recompute_instead_of_skipping(runs, tmp_path):
 
 
 def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
-    import cloudpickle
-
-    cloudpickle.register_pickle_by_value(sys.modules["test_backfill"])
     src, dst = tmp_path / "src", tmp_path / "dst"
     paths = _history(src)
-    marker = str(tmp_path / "killed")
-    env = bf.worker_environ()
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=":0", env=env, silence_logs=50) as cluster, \
-            distributed.Client(cluster) as client:
-        client.register_plugin(_KillOnSecondTask(marker))
-        before = set(client.run(os.getpid).values())
-        res = bf.backfill(src, dst, operation="forwards", scheduler=cluster.scheduler_address)
-        after = set(client.run(os.getpid).values())
-    killed = int(open(marker).read())
-    assert killed in before and killed not in after          # a worker really died
+    res = backfill_killing_a_worker(tmp_path, src, dst, operation="forwards")
     assert res.written + res.skipped == len(DATES) and res.skipped <= 2
     for p in paths:
         rel = os.path.relpath(os.path.dirname(p), src)
