@@ -8,7 +8,8 @@ A universe of fictional underlyings (600 x 16 expiries x 100 strikes x call and 
 forward and discount and quoted bid/ask on a 0.01 tick.  Timed in one run, every
 implementation taking turns round by round, medians of the rounds (see
 ``_timing.median_times``): ``volsweep.implied_vol(model="black76")`` from the premium
-(the yardstick), ``volsweep.implied_forwards`` from bid/ask and from the premium, on the
+(the yardstick; from bid/ask too, for scale: one pass inverting bid, ask and mid),
+``volsweep.implied_forwards`` from bid/ask and from the premium, on the
 rows as listed (grouped already: no sort) and shuffled (one sort of the group keys), and
 ``volsweep.model_free_variance``.  Prints each time and its ratio to the implied-vol pass.
 """
@@ -67,9 +68,12 @@ def runs(table: pa.Table, seed=1) -> dict:
     chain_premium = chain.drop_columns(["bid", "ask"])
     chain_shuffled = shuffled.drop_columns(["forward", "discount"])
     iv_input = table.drop_columns(["bid", "ask"])
+    iv_quotes = table.drop_columns(["premium"])
     return {
         "implied_vol black76 (premium)":
             lambda: volsweep.implied_vol(iv_input, model="black76"),
+        "implied_vol black76 (bid/ask)":
+            lambda: volsweep.implied_vol(iv_quotes, model="black76"),
         "implied_forwards bid/ask": lambda: volsweep.implied_forwards(chain),
         "implied_forwards premium": lambda: volsweep.implied_forwards(chain_premium),
         "implied_forwards bid/ask, shuffled": lambda: volsweep.implied_forwards(chain_shuffled),
