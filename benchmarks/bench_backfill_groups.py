@@ -3,10 +3,12 @@
 For each operation (forwards, variance, smiles) over a synthetic history: the
 single-process throughput (partitions read, run through ``group_backfill.run_group`` and
 written atomically, one after the other, with numba limited to one thread, as a worker
-runs) against a backfill on a LocalCluster of ``--workers`` single-threaded workers
-(cluster start included, and without it: the time from the first task's start to the
-last task's end).  Taking turns, medians of ``--repeats``.  The target (issue): cluster
-throughput >= 0.7 x single-process throughput x workers.
+runs) against a backfill on a LocalCluster of ``--workers`` single-threaded workers:
+one the backfill starts and stops itself (``n_workers``: its start included), and one
+already running, passed as ``scheduler=`` (as a researcher running several backfills
+would), with the tasks alone (first task's start to last task's end) beside it.  Taking
+turns, medians of ``--repeats``.  The target (issue): cluster throughput >= 0.7 x
+single-process throughput x workers.
 
     python -m benchmarks.bench_backfill_groups [--days 65] [--rows 20000] [--workers 2]
 """
@@ -59,10 +61,16 @@ def main(argv=None) -> int:
     p.add_argument("--ops", default="forwards,variance,smiles")
     args = p.parse_args(argv)
 
+    import distributed
+
     import volsweep
     from volsweep import dask_backfill as bf
 
     tmp = tempfile.mkdtemp(prefix="vs-bfg-")
+    cluster = distributed.LocalCluster(n_workers=args.workers, threads_per_worker=1,
+                                       processes=True, dashboard_address=":0",
+                                       env=bf.worker_environ(), silence_logs=50)
+    client = distributed.Client(cluster)
     try:
         src = os.path.join(tmp, "src")
         paths = _history(src, args.days, args.rows, args.underlyings)
@@ -71,25 +79,34 @@ def main(argv=None) -> int:
         for op in args.ops.split(","):
             _single(src, os.path.join(tmp, "warm"), op)         # compile/load first
             shutil.rmtree(os.path.join(tmp, "warm"))
-            single, cluster, tasks = [], [], []
+            bf.backfill(src, os.path.join(tmp, "warm"), operation=op, scheduler=client)
+            shutil.rmtree(os.path.join(tmp, "warm"))              # workers loaded too
+            times = {"single": [], "own": [], "running": [], "tasks": []}
             for r in range(args.repeats):
-                d1 = os.path.join(tmp, f"{op}-s{r}")
-                single.append(_single(src, d1, op))
-                d2 = os.path.join(tmp, f"{op}-c{r}")
+                d = os.path.join(tmp, f"{op}-{r}")
+                times["single"].append(_single(src, d + "s", op))
                 t0 = time.perf_counter()
-                res = bf.backfill(src, d2, operation=op, n_workers=args.workers)
-                cluster.append(time.perf_counter() - t0)
+                res = bf.backfill(src, d + "o", operation=op, n_workers=args.workers)
+                times["own"].append(time.perf_counter() - t0)
+                t0 = time.perf_counter()
+                res = bf.backfill(src, d + "r", operation=op, scheduler=client)
+                times["running"].append(time.perf_counter() - t0)
+                times["tasks"].append(res.task_seconds)
                 assert res.written == len(paths)
-                tasks.append(res.task_seconds)
-                shutil.rmtree(d1)
-                shutil.rmtree(d2)
-            s, c, k = (statistics.median(x) for x in (single, cluster, tasks))
-            print(f"{op:9s} single {len(paths) / s:7.2f} partitions/s   cluster "
-                  f"{len(paths) / c:7.2f} (tasks only {len(paths) / k:7.2f})   ratio to "
-                  f"{args.workers} x single: {s / c / args.workers:.2f} "
-                  f"(tasks only {s / k / args.workers:.2f})   load {os.getloadavg()[0]:.2f}")
+                for x in "sor":
+                    shutil.rmtree(d + x)
+            med = {k: statistics.median(v) for k, v in times.items()}
+            rate = {k: len(paths) / v for k, v in med.items()}
+            ratio = {k: med["single"] / v / args.workers for k, v in med.items()}
+            print(f"{op:9s} partitions/s: single {rate['single']:6.2f} | own cluster "
+                  f"{rate['own']:6.2f} ({ratio['own']:.2f}) | running cluster "
+                  f"{rate['running']:6.2f} ({ratio['running']:.2f}) | tasks alone "
+                  f"{rate['tasks']:6.2f} ({ratio['tasks']:.2f})   (ratio to {args.workers} "
+                  f"x single)   load {os.getloadavg()[0]:.2f}", flush=True)
         print(f"volsweep {volsweep.__version__}")
     finally:
+        client.close()
+        cluster.close()
         shutil.rmtree(tmp, ignore_errors=True)
     return 0
 
