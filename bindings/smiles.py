@@ -360,8 +360,9 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
         ok &= _is_ok(st)
     bcol, acol = reader.name("iv_bid"), reader.name("iv_ask")
     if bcol is not None and acol is not None:
-        spread = np.subtract(reader.floats("iv_ask", acol), reader.floats("iv_bid", bcol),
-                             out=new_array(n))
+        with np.errstate(all="ignore"):
+            spread = np.subtract(reader.floats("iv_ask", acol), reader.floats("iv_bid", bcol),
+                                 out=new_array(n))
     else:
         spread = new_array(n)
         spread.fill(np.nan)
