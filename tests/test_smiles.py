@@ -467,3 +467,19 @@ def test_hostile_values_never_raise_and_every_key_gets_one_row():
     pts = volsweep.smile_vols(fits, data.drop_columns(["iv", "iv_bid", "iv_ask", "status"]))
     assert pts.num_rows == n
     assert set(pts.column("smile_status").to_pylist()) <= set(svi.POINT_NAMES)
+
+
+def test_polars_and_pandas_inputs_give_the_same_fits():
+    pl = pytest.importorskip("polars")
+    data = pa.concat_tables([chain([SLICES[1]]), chain([SLICES[2]], underlying="ZUXB")])
+    data = data.append_column("status", pa.array(["ok"] * data.num_rows))
+    want = volsweep.fit_smiles(data, model="black76", by=BY)
+    frame = pl.from_arrow(data).with_columns(pl.col("underlying").cast(pl.Categorical),
+                                             pl.col("status").cast(pl.Categorical))
+    for got in (volsweep.fit_smiles(frame, model="black76", by=BY),
+                volsweep.fit_smiles(data.to_pandas(), model="black76", by=BY)):
+        assert got.column("underlying").to_pylist() == ["ZUXA", "ZUXB"]
+        for c in ("svi_a", "svi_b", "svi_rho", "svi_m", "svi_sigma", "status"):
+            assert got.column(c).to_pylist() == want.column(c).to_pylist(), c
+    pts = volsweep.smile_vols(want, frame.select(["underlying", "expiry_years", "strike"]))
+    assert set(pts.column("smile_status").to_pylist()) == {"ok"}
