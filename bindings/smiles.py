@@ -22,7 +22,8 @@ from volsweep.kernel import registry as _registry
 from volsweep.kernel import svi as _svi
 from volsweep.kernel.registry import DEFAULT_MODEL
 
-from ._columns import OptionError, _scalar_time, _to_float64, _to_seconds, _years_between
+from ._columns import (OptionError, _is_string_view, _scalar_time, _to_float64, _to_seconds,
+                       _years_between)
 from ._input import as_batches
 from ._output import new_array
 from .loader import launch_guard
@@ -199,6 +200,20 @@ def _dense_codes(col: pa.ChunkedArray) -> np.ndarray:
     return ranks.to_numpy(zero_copy_only=False).astype(np.int64) - 1
 
 
+def _plain_strings(col: pa.ChunkedArray) -> pa.ChunkedArray:
+    """String views (polars' strings and Categoricals) as large strings, which every
+    compute function takes; dictionaries keep their indices.  Other columns as they are."""
+    t = col.type
+    if pa.types.is_dictionary(t) and _is_string_view(t.value_type):
+        return pa.chunked_array(
+            [pa.DictionaryArray.from_arrays(c.indices, c.dictionary.cast(pa.large_string()))
+             for c in col.chunks],
+            type=pa.dictionary(t.index_type, pa.large_string()))
+    if _is_string_view(t):
+        return col.cast(pa.large_string())
+    return col
+
+
 def _is_ok(col: pa.ChunkedArray) -> np.ndarray:
     """True where the status word is "ok" (a dictionary column through its dictionary)."""
     parts = []
@@ -353,15 +368,16 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
     ok = np.isfinite(iv)
     scol = reader.name("status")
     if scol is not None:
-        st = table.column(scol)
+        st = _plain_strings(table.column(scol))
         vt = st.type.value_type if pa.types.is_dictionary(st.type) else st.type
         if not (pa.types.is_string(vt) or pa.types.is_large_string(vt)):
             raise TypeError(f"column {scol!r} (status) must hold status words, got {st.type}")
         ok &= _is_ok(st)
     bcol, acol = reader.name("iv_bid"), reader.name("iv_ask")
     if bcol is not None and acol is not None:
-        spread = np.subtract(reader.floats("iv_ask", acol), reader.floats("iv_bid", bcol),
-                             out=new_array(n))
+        with np.errstate(all="ignore"):
+            spread = np.subtract(reader.floats("iv_ask", acol), reader.floats("iv_bid", bcol),
+                                 out=new_array(n))
     else:
         spread = new_array(n)
         spread.fill(np.nan)
@@ -370,7 +386,9 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
 
     # one sort into slices (skipped when the rows are already in order)
     surface_keys, time_key = _surface_and_time(by)
-    key_table = table.select(list(dict.fromkeys(by))).unify_dictionaries()
+    key_table = table.select(list(dict.fromkeys(by)))
+    key_table = pa.table([_plain_strings(c) for c in key_table.columns],
+                         names=key_table.column_names).unify_dictionaries()
     keys = list(surface_keys) + [time_key]
     skey = np.where(np.isnan(strike), np.inf, strike)
     order, starts, surface = _slices(key_table, keys, len(surface_keys), skey, n)
@@ -450,7 +468,7 @@ def _key_rows(table: pa.Table, keys) -> list:
         return [()] * table.num_rows
     parts = []
     for k in keys:
-        col = table.column(k).combine_chunks()
+        col = _plain_strings(table.column(k)).combine_chunks()
         if pa.types.is_dictionary(col.type):
             col = col.cast(col.type.value_type)
         enc = pc.dictionary_encode(col)

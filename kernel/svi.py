@@ -24,8 +24,8 @@ slices run in parallel, in tasks of 32 with their own scratch):
    over the slice: the reduced objective on a fixed ``GRID_M`` x ``GRID_S`` grid scaled to
    the slice's log-moneyness range, then ``NM_ITERATIONS`` Nelder-Mead iterations from the
    best grid point (a fixed count).
-3. Polish over all the quotes: at most ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on
-   all five parameters (a step is taken only when it does not raise the objective and
+3. Polish: at most ``POLISH_ITERATIONS`` Levenberg-Marquardt steps on all five
+   parameters over the search's quotes, then as many over all the quotes (a step is taken only when it does not raise the objective and
    keeps b >= 0, |rho| < 1, sigma > 0 and the wing slopes <= 2; the iteration stops once
    a step changes no parameter by more than 1e-10 relative), so that exact SVI vols are
    reproduced to rounding error.
@@ -413,9 +413,9 @@ def _admissible(b, rho, sig):
 
 
 @_njit
-def _polish(k, v, W, o, e, p, scratch, lo, hi):
+def _polish(k, v, W, o, e, p, scratch, lo, hi, iterations):
     """Levenberg-Marquardt on p = (a, b, rho, m, sigma), in place: at most
-    ``POLISH_ITERATIONS`` iterations of one pass over the quotes each, ending early once an
+    ``iterations`` iterations of one pass over the quotes each, ending early once an
     accepted step changes no parameter by more than 1e-10 relative (converged; the
     only data-dependent amount of work in a fit).  The pass at a trial
     point gives its
@@ -435,7 +435,7 @@ def _polish(k, v, W, o, e, p, scratch, lo, hi):
         best[j] = p[j]
     f = _normal_equations(k, v, W, o, e, p[0], p[1], p[2], p[3], p[4], A, g)
     lam = 1e-3
-    for _ in range(POLISH_ITERATIONS):
+    for _ in range(iterations):
         if not _damped_solve(A, g, lam, L, step):
             lam *= 10.0
             continue
@@ -696,7 +696,9 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
     p[4] = sig
     if abs(p[2]) >= 1.0:                     # on an edge |d| = c: keep rho inside (-1, 1)
         p[2] = math.copysign(1.0 - 1e-12, p[2])
-    _polish(k, v, W, o, ee, p, scratch, 0.0, 0.0)
+    # first on the search's quotes (a third of the cost per step), then on all of them
+    _polish(ks, vs, ws, 0, nsub, p, scratch, 0.0, 0.0, POLISH_ITERATIONS)
+    _polish(k, v, W, o, ee, p, scratch, 0.0, 0.0, POLISH_ITERATIONS)
     # the checked range: the quotes' range of k (widened by CHECK_WIDEN of its width on
     # each side)
     c_lo = k_lo - CHECK_WIDEN * (k_hi - k_lo)
@@ -709,7 +711,8 @@ def _fit_slice(s, o, e, lnk, iv, spread, ok, F, T, arbitrage_free, k, v, W,
         if not w0 > 0.0:
             w0 = sv
         _blend_free(p, w0, c_lo, c_hi, gs)
-        _polish(k, v, W, o, ee, p, scratch, c_lo, c_hi)   # refit, staying free of it
+        _polish(k, v, W, o, ee, p, scratch, c_lo, c_hi,      # refit, staying free of it
+                POLISH_ITERATIONS)
     finite = True
     for j in range(_N_PARAMS):
         finite = finite and abs(p[j]) < np.inf

@@ -431,3 +431,55 @@ def test_smile_command_without_matplotlib_says_how_to_install(tmp_path, capsys, 
     assert main(["smile", "missing.parquet", "--underlying", "KAQU",
                  "-o", str(tmp_path / "s.png")]) == 2
     assert "volsweep[plot]" in capsys.readouterr().err
+
+
+def test_hostile_values_never_raise_and_every_key_gets_one_row():
+    # arbitrary junk in every column (NaN, inf, zero, negative, huge), null keys
+    rng = np.random.default_rng(9)
+    n = 3000
+    junk = np.array([np.nan, np.inf, -np.inf, 0.0, -1.0, 1e300, 5e-324])
+
+    def col(good):
+        x = good.copy()
+        bad = rng.random(n) < 0.15
+        x[bad] = rng.choice(junk, bad.sum())
+        return x
+
+    names = np.array(["ZUXA", "ZUXB", "ZUXC", None], object)[rng.integers(0, 4, n)]
+    T = rng.choice([0.1, 0.5, 1.0, np.nan], n)
+    data = pa.table({
+        "underlying": pa.array(list(names)), "expiry_years": col(T),
+        "forward": col(np.full(n, 100.0)), "strike": col(100 * np.exp(rng.normal(0, 0.3, n))),
+        "iv": col(rng.uniform(0.1, 0.6, n)),
+        "iv_bid": col(rng.uniform(0.05, 0.1, n)), "iv_ask": col(rng.uniform(0.6, 0.7, n)),
+        "status": pa.array(rng.choice(["ok", "ok", "ok", "zero_bid", None], n)).dictionary_encode()})
+    fits = volsweep.fit_smiles(data, model="black76", by=BY)
+    keys = set(zip(data.column("underlying").to_pylist(),
+                   [None if x != x else x for x in data.column("expiry_years").to_pylist()]))
+    got = list(zip(fits.column("underlying").to_pylist(),
+                   [None if x is None or x != x else x
+                    for x in fits.column("expiry_years").to_pylist()]))
+    assert fits.num_rows == len(keys) == len(set(got))
+    assert set(fits.column("status").to_pylist()) <= set(svi.SLICE_NAMES)
+    ok = fits.filter(pc.equal(fits.column("status"), "ok"))
+    for c in ("svi_a", "svi_b", "svi_rho", "svi_m", "svi_sigma", "rmse_iv"):
+        assert ok.column(c).null_count == 0 and np.all(np.isfinite(ok.column(c).to_numpy()))
+    pts = volsweep.smile_vols(fits, data.drop_columns(["iv", "iv_bid", "iv_ask", "status"]))
+    assert pts.num_rows == n
+    assert set(pts.column("smile_status").to_pylist()) <= set(svi.POINT_NAMES)
+
+
+def test_polars_and_pandas_inputs_give_the_same_fits():
+    pl = pytest.importorskip("polars")
+    data = pa.concat_tables([chain([SLICES[1]]), chain([SLICES[2]], underlying="ZUXB")])
+    data = data.append_column("status", pa.array(["ok"] * data.num_rows))
+    want = volsweep.fit_smiles(data, model="black76", by=BY)
+    frame = pl.from_arrow(data).with_columns(pl.col("underlying").cast(pl.Categorical),
+                                             pl.col("status").cast(pl.Categorical))
+    for got in (volsweep.fit_smiles(frame, model="black76", by=BY),
+                volsweep.fit_smiles(data.to_pandas(), model="black76", by=BY)):
+        assert got.column("underlying").to_pylist() == ["ZUXA", "ZUXB"]
+        for c in ("svi_a", "svi_b", "svi_rho", "svi_m", "svi_sigma", "status"):
+            assert got.column(c).to_pylist() == want.column(c).to_pylist(), c
+    pts = volsweep.smile_vols(want, frame.select(["underlying", "expiry_years", "strike"]))
+    assert set(pts.column("smile_status").to_pylist()) == {"ok"}
