@@ -57,7 +57,7 @@ Implied vol: the European implied vol of the premium (kernel/implied.py) bounds 
 American one from above (the American price is at least the European at every vol); from
 there a Newton step with the European vega, then secant steps on the American price:
 nine evaluations at the fast setting (with a defect correction by the accurate price)
-and three at the accurate one, fixed work per row.
+and two at the accurate one, fixed work per row.
 
 Scalar use (scenario revaluation, other jitted code): ``american_bsm_price`` below is a
 plain numba function of one row's numbers (it allocates its small work arrays itself).
@@ -423,7 +423,7 @@ def american_bsm_price(S, K, T, r, q, vol, cp):
 
 # ------------------------------------------------------------------ implied vol
 
-_IV_TOL = 1e-6      # accepted |price(iv) - premium| per time value (before the last step)
+_IV_TOL = 1e-3      # accepted |price - premium| per time value before the last secant step
 
 
 @_fn
@@ -447,6 +447,7 @@ def _euro_vega(F, K, D, x, sT):
 
 
 _IV_MAX = 8.0        # vols above this are not searched (status out_of_range)
+_TV_RESOLVED = 1e-4  # time value per premium below which an unresolved row is no_time_value
 _IV_FAST_STEPS = 5   # secant steps on the fast setting's price before the final setting
 
 
@@ -459,9 +460,11 @@ def american_iv(P, U, K, T, r, q, cp, F, D, st, stf, H, w):
     Newton step with the European vega and secant steps on the fast-setting price
     (``_IV_FAST_STEPS`` evaluations in all, bracketed); then, with the difference of the
     two settings' prices there added to the fast price (defect correction), two more fast
-    secant steps, and two secant steps on the price at ``st``; the
-    last is accepted when the price at the one before it is within _IV_TOL of the time
-    value (or 4e-9 of the premium, the price's own accuracy)."""
+    secant steps; then the price at ``st`` there and one Newton step with the secant's
+    slope, and a secant step through those two final-setting points, accepted when the
+    price at the point before it is within _IV_TOL of the time value (or 4e-9 of the
+    premium, the price's own accuracy): the error of that last secant step is about the
+    product of its two points' errors."""
     call = cp > 0.0
     if not (P == P):
         return NAN, S.MISSING_INPUT
@@ -531,13 +534,17 @@ def american_iv(P, U, K, T, r, q, cp, F, D, st, stf, H, w):
     lo = 0.0
     hi = _IV_MAX
     g4 = american_price_row(U, K, T, r, q, x4, cp, st, H, w) - P
+    # the secant through two final-setting points, both near the root: its error is about
+    # the product of theirs
     x5 = _step(x3, g3, x4, g4, slope, lo, hi, ftol)
-    g5 = american_price_row(U, K, T, r, q, x5, cp, st, H, w) - P
-    x6 = _step(x4, g4, x5, g5, slope, lo, hi, ftol)
     tv = P - lower
-    good = abs(g5) <= max(_IV_TOL * tv, 4e-9 * P) and x6 > 0.0 and x6 < _IV_MAX
-    bad = S.NO_TIME_VALUE if tv < 1e-7 * P else S.OUT_OF_RANGE
-    return (x6 if good else NAN), (S.OK if good else bad)
+    good = (abs(g4) <= max(_IV_TOL * tv, 4e-9 * P) and abs(x5 - x4) <= 0.01 * x4
+            and x5 > 0.0 and x5 < _IV_MAX)
+    # a time value below 1e-4 of the premium (deep in the money, at the edge of the
+    # exercise region, where the price is flat in vol up to a kink) is not resolved by
+    # these steps: no_time_value, as a European time value below double precision is
+    bad = S.NO_TIME_VALUE if tv < _TV_RESOLVED * P else S.OUT_OF_RANGE
+    return (x5 if good else NAN), (S.OK if good else bad)
 
 
 # ------------------------------------------------------------------ Greeks
@@ -755,7 +762,7 @@ def implied_vol(premium, spot, K, T, D, q, exercise, cp, iv_out, status_out,
                 setting="accurate"):
     """Implied vols of premiums with the exercise style of each row (as ``price``): for
     American rows a root-finder on the American price from the European implied vol of the
-    premium (nine fast-setting evaluations and three at ``setting``)."""
+    premium (nine fast-setting evaluations and two at ``setting``)."""
     premium, spot, K, T, D, q, exercise = _inputs(premium, spot, K, T, D, q, exercise)
     n = spot.shape[0]
     cp = _args.codes(n, cp)
