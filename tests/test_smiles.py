@@ -483,3 +483,22 @@ def test_polars_and_pandas_inputs_give_the_same_fits():
             assert got.column(c).to_pylist() == want.column(c).to_pylist(), c
     pts = volsweep.smile_vols(want, frame.select(["underlying", "expiry_years", "strike"]))
     assert set(pts.column("smile_status").to_pylist()) == {"ok"}
+
+
+def test_results_do_not_depend_on_the_number_of_threads():
+    # the same bits on 1 thread as on all of them (160 slices: several parallel tasks),
+    # and for a surface fitted alone as among the others
+    import numba
+
+    data = pa.concat_tables([chain(SLICES, underlying=f"ZU{i:02d}") for i in range(40)])
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one = volsweep.fit_smiles(data, model="black76", by=BY)
+    finally:
+        numba.set_num_threads(before)
+    assert one.num_rows == 160
+    assert volsweep.fit_smiles(data, model="black76", by=BY).equals(one)
+    alone = volsweep.fit_smiles(chain(SLICES, underlying="ZU07"), model="black76", by=BY)
+    assert alone.drop_columns(["underlying"]).equals(
+        one.slice(28, 4).drop_columns(["underlying"]))
