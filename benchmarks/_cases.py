@@ -240,3 +240,38 @@ def repeated(runs: dict, calls: int) -> dict:
     """Each run made ``calls`` times in a row (one timing: a 100-row call is too short to
     time alone)."""
     return {key: (lambda f=f: [f() for _ in range(calls)]) for key, f in runs.items()}
+
+
+# ---------------------------------------------------------------- American exercise
+
+def american_runs(n_euro, n_amer):
+    """Runs taking turns for the American section of the report: the European price of
+    every model with an American entry (``n_euro`` rows of ``make_data``) and, on the first
+    ``n_amer`` rows, its American price at the accurate and the fast setting and the
+    American implied vol of the accurate prices.  Returns (runs, rows per run)."""
+    from volsweep.kernel import registry
+
+    d = make_data(n_euro)
+    runs, rows = {}, {}
+    for name, am in registry.AMERICAN.items():
+        eu = registry.MODELS[name]
+        cols = model_inputs(eu, d)
+        p, st = np.empty(n_euro), np.empty(n_euro, np.int8)
+        runs[f"{name} european price"] = (lambda k=eu.kernels["price"], c=cols, p=p, st=st:
+                                          k(*c, d["vol"], d["cp"], p, st))
+        rows[f"{name} european price"] = n_euro
+        sub = {k: v[:n_amer] for k, v in d.items()}
+        sub["exercise"] = np.ones(n_amer)
+        acols = model_inputs(am, sub)
+        ap, ast, aiv = np.empty(n_amer), np.empty(n_amer, np.int8), np.empty(n_amer)
+        am.kernels["price"](*acols, sub["vol"], sub["cp"], ap, ast)
+        prem = ap.copy()
+        for setting in ("accurate", "fast"):
+            runs[f"{name} american price {setting}"] = (
+                lambda k=am.kernels["price"], c=acols, s=setting, p=ap, st=ast:
+                k(*c, sub["vol"], sub["cp"], p, st, setting=s))
+            rows[f"{name} american price {setting}"] = n_amer
+        runs[f"{name} american iv"] = (lambda k=am.kernels["implied_vol"], c=acols, q=prem,
+                                       iv=aiv, st=ast: k(q, *c, sub["cp"], iv, st))
+        rows[f"{name} american iv"] = n_amer
+    return runs, rows

@@ -23,6 +23,11 @@ drift of a shared machine hits all of them alike) and the median of R rounds:
   at N rows and on small batches (100 and 10,000 rows: the fixed cost of a call; with
   ``--before CHECKOUT``, the previous code version and this one taking turns in two child
   processes, ``benchmarks.compare``);
+* scenario grids (``volsweep.scenarios``, 21 x 7 shocks on up to 1M positions) against
+  one ``volsweep.price`` call on the same rows: revaluations/s over rows/s
+  (``benchmarks/bench_risk.py``);
+* the chain operations (``implied_forwards``, ``model_free_variance``) on 1.92M rows
+  against one ``implied_vol`` pass on the same rows (``benchmarks.bench_chains``);
 * smiles (``benchmarks.bench_smiles``): ``fit_smiles`` on 9,600 slices x 100 quotes
   against one table-level ``implied_vol`` pass on the same rows, taking turns;
 * first-call latency in a new process with the cache warm (subprocess);
@@ -48,7 +53,8 @@ import time
 import numba
 import numpy as np
 
-from benchmarks import _cases, bench_greeks, bench_implied, bench_price, bench_smiles, compare
+from benchmarks import (_cases, bench_greeks, bench_implied, bench_price, bench_risk,
+                        bench_smiles, compare)
 from benchmarks._timing import median_times
 from volsweep.kernel import registry
 
@@ -136,6 +142,29 @@ def models_section(n: int, repeats: int) -> dict:
                            if o != name)
         print(f"  {name:9} price {px / 1e6:7.1f} ({others})   iv "
               f"{r[f'{name} iv'] / 1e6:7.1f} (iv/price {r[f'{name} iv'] / px:.3f})")
+    return r
+
+
+def american_section(n: int, repeats: int, n_amer: int = 20_000) -> dict:
+    """American exercise (registry ``AMERICAN``), all taking turns in the same rounds:
+    its price at the accurate and the fast setting against the European price of the same
+    model (goal at the accurate setting: at least 1/300 of it), and its implied vol
+    against its price (goal: at least 1/5)."""
+    runs, rows = _cases.american_runs(n, n_amer)
+    t = _rounds(runs, repeats)
+    r = {k: rows[k] / v for k, v in t.items()}
+    print(f"\n1c. American exercise, {n_amer:,} rows ({n:,} for the European price), "
+          f"{numba.get_num_threads()} threads, load average {os.getloadavg()[0]:.2f} "
+          "(contracts/s; ratios within this run)")
+    for name in registry.AMERICAN:
+        eu = r[f"{name} european price"]
+        acc = r[f"{name} american price accurate"]
+        fast = r[f"{name} american price fast"]
+        iv = r[f"{name} american iv"]
+        print(f"  {name}: european price {eu / 1e6:.1f} M/s; american price accurate "
+              f"{acc / 1e3:.1f} k/s (1/{eu / acc:.0f} of european), fast {fast / 1e3:.1f} "
+              f"k/s (1/{eu / fast:.0f}); american iv {iv / 1e3:.1f} k/s (iv/price "
+              f"{iv / acc:.3f})")
     return r
 
 
@@ -355,17 +384,30 @@ def main(argv=None, rows: int | None = None) -> int:
     ap.add_argument("--cold", action="store_true", help="time a cold compile (minutes)")
     ap.add_argument("--before", metavar="CHECKOUT", help="another checkout with its own "
                     ".venv: section 3b measures both code versions taking turns")
+    ap.add_argument("--american-only", action="store_true",
+                    help="only section 1c (American exercise)")
+    ap.add_argument("--american-rows", type=int, default=20_000)
     args = ap.parse_args(argv)
     import volsweep
 
+    if args.american_only:
+        print(f"volsweep benchmark report, "
+              f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
+        american_section(args.rows, args.repeats, args.american_rows)
+        print(f"   machine: {machine()}")
+        return 0
     volsweep.warmup()
     print(f"volsweep benchmark report, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     kernel_section(args.rows, args.repeats)
     models_section(args.rows, args.repeats)
+    american_section(args.rows, args.repeats, args.american_rows)
     print(f"   machine: {machine()}")
     alternatives_section(args.rows, args.repeats)
     table_section(args.rows, args.repeats)
     small_batch_section(args.repeats, before=args.before)
+    bench_risk.risk_section(min(args.rows, 1_000_000), max(3, args.repeats // 2))
+    from benchmarks.bench_chains import chains_section
+    chains_section(repeats=args.repeats)     # group operations against one implied-vol pass
     bench_smiles.report(repeats=args.repeats)
     latency_section()
     if args.asm:

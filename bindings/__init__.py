@@ -18,6 +18,9 @@ _EXPORTS = {
     "GREEK_NAMES": "kernel.greeks", "MODELS": "kernel.registry",
     "OPERATIONS": "kernel.registry",
     "OptionError": "_columns", "IgnoredInputWarning": "_columns",
+    "position_greeks": "risk", "scenarios": "risk",
+    "implied_forwards": "chains", "model_free_variance": "chains",
+    "constant_maturity_variance": "chains", "term_history": "history_view",
 }
 
 __all__ = sorted(_EXPORTS)

@@ -41,16 +41,20 @@ from volsweep.kernel import registry as _registry
 from ._output import new_array
 
 # every logical input name: the models' underlyings and extra inputs come from the registry
+_ENTRIES = list(_registry.MODELS.values()) + list(_registry.AMERICAN.values())
 KNOWN_NAMES = tuple(dict.fromkeys(
     [m.underlying for m in _registry.MODELS.values()]
     + ["strike", "expiry_years", "expiry", "as_of", "rate", "discount"]
-    + [x.name for m in _registry.MODELS.values() for x in m.extras]
+    + [x.name for m in _ENTRIES for x in m.extras]
     + ["is_call", "vol", "premium", "bid", "ask"]))
-# the inputs read as numbers (all but the call/put flag and the times)
-NUMERIC_NAMES = tuple(n for n in KNOWN_NAMES if n not in ("is_call", "expiry", "as_of"))
+# the inputs read as numbers (all but the call/put flag, the exercise style and the times)
+NUMERIC_NAMES = tuple(n for n in KNOWN_NAMES
+                      if n not in ("is_call", "exercise", "expiry", "as_of"))
 _NS_PER_YEAR = 365.0 * 86400.0 * 1e9  # ACT/365F
 _CALL_WORDS = ["call", "c"]
 _PUT_WORDS = ["put", "p"]
+_AMERICAN_WORDS = ["american"]
+_EUROPEAN_WORDS = ["european"]
 
 
 def numeric_columns(columns: dict | None) -> set:
@@ -64,7 +68,8 @@ def numeric_columns(columns: dict | None) -> set:
 # command line passes its own flags to ``Worded.render``.  ``unmap``: how to say "no
 # column for this input".
 PYTHON_WORDS = {"columns": "columns=", "as_of": "as_of=", "quotes": "quotes=",
-                "keep": "keep=", "unmap": "columns={{{name!r}: None}}"}
+                "keep": "keep=", "exercise": "exercise=",
+                "unmap": "columns={{{name!r}: None}}"}
 
 
 class Worded:
@@ -115,12 +120,14 @@ class ColumnPlan:
     quote: str = "none"                           # "premium", "bid_ask" or "none"
     plain: set = field(default_factory=set)       # logical inputs stored as plain float64
     index: dict = field(default_factory=dict)     # logical name -> column position
+    entry: object = None                          # the registry entry (model, exercise)
 
     # ------------------------------------------------------------------ building
     @classmethod
     def build(cls, schema: pa.Schema, model: str, columns: dict | None, *, need_vol: bool,
-              need_quote: bool, as_of=None) -> "ColumnPlan":
-        entry = _registry.model(model)
+              need_quote: bool, as_of=None, exercise=None) -> "ColumnPlan":
+        exercise = _exercise_word(exercise)
+        _registry.model(model)              # an unknown model first
         if columns is not None and not isinstance(columns, Mapping):
             raise TypeError("columns= must be a dict of {our input name: your column name}, "
                             f"got {type(columns).__name__}")
@@ -141,8 +148,10 @@ class ColumnPlan:
                 raise OptionError("columns", "{option} gives column {value!r} for {key!r}, "
                                   "but the input has no column {value!r}", key=key,
                                   value=value)
+        entry = _exercise_entry(model, exercise, columns, names)
         _check_model_inputs(entry, columns, names)
         plan = cls(model)
+        plan.entry = entry
 
         def present(logical):
             col = columns.get(logical, logical)
@@ -228,6 +237,10 @@ class ColumnPlan:
                 ok = (pa.types.is_boolean(t) or pa.types.is_string(t)
                       or pa.types.is_large_string(t) or _is_string_view(t))
                 want = "bool or strings call/put/C/P"
+            elif logical == "exercise":
+                ok = (pa.types.is_string(t) or pa.types.is_large_string(t)
+                      or _is_string_view(t))
+                want = "strings american/european"
             elif logical in ("expiry", "as_of"):
                 ok = pa.types.is_timestamp(t) or pa.types.is_date(t)
                 want = "a timestamp or date"
@@ -263,7 +276,12 @@ class ColumnPlan:
         return _black.discount_factors(r, T, new_array(len(T)))
 
     def extra(self, batch, extra) -> np.ndarray:
-        """A model's extra input (a registry ``Input``): its column, or its default."""
+        """A model's extra input (a registry ``Input``): its column, or its default.  The
+        exercise style column becomes 1.0 (american), 0.0 (european) or NaN (null or any
+        other word: missing_input, as an unrecognised call/put word)."""
+        if extra.name == "exercise" and "exercise" in self.source:
+            col = batch.column(self.index["exercise"])
+            return _through_encodings(col, _plain_exercise, np.nan)
         if extra.name in self.source:
             return self.floats(batch, extra.name)
         return np.full(batch.num_rows, extra.default)
@@ -303,6 +321,54 @@ def _check_model_inputs(entry, columns: dict, names) -> None:
                 "columns", "column {name!r} is not read: model {model!r} has no input "
                 "{name!r} (model {other!r} has); map it to no column to say so ({unmap})",
                 name=name, model=entry.name, other=others[name]), stacklevel=_caller_level())
+
+
+def _exercise_word(exercise):
+    """The ``exercise=`` argument: None (an ``exercise`` column if the input has one, else
+    European), or "american" / "european" in any case."""
+    if exercise is None:
+        return None
+    word = exercise.strip().lower() if isinstance(exercise, str) else None
+    if word not in _registry.EXERCISES:
+        raise ValueError(f"unknown exercise {exercise!r}; expected one of "
+                         f"{', '.join(_registry.EXERCISES)} (or None: the 'exercise' column "
+                         "if the input has one, else european)")
+    return word
+
+
+def _exercise_entry(model: str, exercise, columns: dict, names):
+    """The registry entry that serves ``model`` with ``exercise`` (checked) and the input:
+    an ``exercise`` column (by its name or mapped) selects the American entry, whose
+    kernels price each row with its own style; ``exercise="american"`` does for every row.
+    Giving both is an error (which one is meant?), as is an exercise column for a model
+    without American exercise."""
+    col = columns.get("exercise", "exercise")
+    has_col = col is not None and col in names
+    if has_col and exercise is not None:
+        raise OptionError("exercise", "{option}{value!r} is given and the input has an "
+                          "exercise column {col!r}: leave {option} unset to read each "
+                          "row's style from the column, or map the column to no column "
+                          "({unmap})", value=exercise, col=col, name="exercise")
+    if has_col and model not in _registry.AMERICAN:
+        raise OptionError("columns", "the input has an exercise column {col!r}, but model "
+                          "{model!r} has no American exercise (American exercise: "
+                          "{american}); if every row is European, map it to no column "
+                          "({unmap})", col=col, model=model, name="exercise",
+                          american=", ".join(_registry.AMERICAN))
+    return _registry.model(model, "american" if (has_col or exercise == "american")
+                           else "european")
+
+
+def _plain_exercise(arr: pa.Array) -> np.ndarray:
+    if pa.types.is_null(arr.type):
+        return np.full(len(arr), np.nan)
+    if _is_string_view(arr.type):
+        arr = arr.cast(pa.large_string())
+    words = pc.utf8_lower(pc.utf8_trim_whitespace(arr))
+    out = pc.if_else(pc.is_in(words, pa.array(_AMERICAN_WORDS)), 1.0,
+                     pc.if_else(pc.is_in(words, pa.array(_EUROPEAN_WORDS)), 0.0, np.nan))
+    out = pc.fill_null(out, np.nan)
+    return out.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
 
 
 def _caller_level() -> int:

@@ -60,15 +60,24 @@ def _check_units(units):
         raise ValueError(f"unknown units {units!r}; expected 'raw' or 'desk'")
 
 
-def _greek_list(which, model) -> tuple:
-    """Validated Greek names, in output order (raises on an unknown name)."""
+def _greek_list(which, entry) -> tuple:
+    """Validated Greek names of a registry entry, in output order (raises on an unknown
+    name or one the entry does not define)."""
     if which is not None and not isinstance(which, str):
         try:
             which = list(which)
         except TypeError:
             raise TypeError(f"which= must be a Greek name, a list of them or None, "
                             f"got {which!r}") from None
-    return _greeks.greek_names(_greeks.greek_mask(which, model))
+    names = _greeks.greek_names(_greeks.greek_mask(which, entry.name))
+    if which is None:
+        return tuple(g for g in names if g in entry.greeks)
+    for g in names:
+        if g not in entry.greeks:
+            raise ValueError(f"{g} is not defined for model {entry.name!r} with "
+                             f"{entry.exercise} exercise (its Greeks: "
+                             f"{', '.join(entry.greeks)})")
+    return names
 
 
 class Prepared:
@@ -76,25 +85,30 @@ class Prepared:
     schema.  ``out_schema``: the input fields followed by ``outputs``; ``used``: the input
     columns the operation reads."""
 
-    def __init__(self, operation, schema, model, which, units, columns, as_of):
+    def __init__(self, operation, schema, model, which, units, columns, as_of,
+                 exercise=None):
         op = _registry.OPERATIONS.get(operation)
         if op is None:
             raise ValueError(f"unknown operation {operation!r}; expected one of "
                              f"{', '.join(_registry.OPERATIONS)}")
         self.operation = operation
-        self.model = _registry.model(model)
-        names = ()
+        _registry.model(model)
         if operation in ("greeks", "sweep"):
             _check_units(units)
-            names = _greek_list(which, model)
         elif which is not None or units != "raw":
             raise ValueError(f"which= and units= apply to greeks and sweep, not {operation}")
-        self.greeks = names
         self.units = units
         self.in_schema = schema
         self.plan = ColumnPlan.build(schema, model=model, columns=columns,
                                      need_vol=op.needs == "vol",
-                                     need_quote=op.needs == "quote", as_of=as_of)
+                                     need_quote=op.needs == "quote", as_of=as_of,
+                                     exercise=exercise)
+        # the registry entry: the model with the exercise style the call asked for
+        self.model = self.plan.entry
+        names = ()
+        if operation in ("greeks", "sweep"):
+            names = _greek_list(which, self.model)
+        self.greeks = names
         quotes = self.plan.quote == "bid_ask"
         outputs = ()
         if operation == "price":
@@ -112,12 +126,14 @@ class Prepared:
         if names or quotes:
             # the compiled Greek set serving the request (the bid/ask kernel needs vega)
             want = _greeks.greek_mask(names, model) if names else 0
-            self.mask = served_mask(model, want | ((1 << _VEGA) if quotes else 0))
+            self.mask = served_mask(model, want | ((1 << _VEGA) if quotes else 0),
+                                    self.model.exercise)
         served = _greeks.greek_names(self.mask)
         self.rows = [served.index(g) for g in names]          # rows of out to keep
         self.desk = ([_greeks.DESK_SCALE[g] for g in names] if units == "desk" else None)
         self._compute = getattr(self, "_" + kind)
-        load_kernel(self.model.name, kind, self.mask)   # says so on stderr if it compiles
+        # says so on stderr if it compiles
+        load_kernel(self.model.name, kind, self.mask, self.model.exercise)
 
     def __call__(self, batch: pa.RecordBatch) -> pa.RecordBatch:
         if not isinstance(batch, pa.RecordBatch):
@@ -219,14 +235,15 @@ def _freeze(value):
 
 
 def prepare(operation: str, schema: pa.Schema, *, model: str = DEFAULT_MODEL, which=None,
-            units: str = "raw", columns: dict | None = None, as_of=None) -> Prepared:
+            units: str = "raw", columns: dict | None = None, as_of=None,
+            exercise: str | None = None) -> Prepared:
     """The operation ``operation`` ("price", "implied_vol", "greeks" or "sweep") prepared
     for input batches of ``schema`` with these options: the column plan, every schema check
     and the output schema, done once.  Cached per (schema, options): a service calling
     ``price`` on many small batches of one schema builds it once.  Raises as the operation
     would on a schema problem."""
     try:
-        key = (operation, model, _freeze(which), units, _freeze(columns), as_of)
+        key = (operation, model, _freeze(which), units, _freeze(columns), as_of, exercise)
         hash(key)
     except TypeError:            # an unhashable option (e.g. an exotic as_of): no caching
         key = None
@@ -235,7 +252,7 @@ def prepare(operation: str, schema: pa.Schema, *, model: str = DEFAULT_MODEL, wh
         for k, sch, prep in reversed(_PREPARED):
             if k == key and sch.equals(schema, check_metadata=True):
                 return prep
-    prep = Prepared(operation, schema, model, which, units, columns, as_of)
+    prep = Prepared(operation, schema, model, which, units, columns, as_of, exercise)
     if key is not None:
         with _PREPARED_LOCK:
             _PREPARED.append((key, schema, prep))
@@ -250,51 +267,61 @@ def _run(operation, data, **options) -> pa.Table:
 
 
 def price(data, model: str = DEFAULT_MODEL, columns: dict | None = None, *,
-          as_of=None) -> pa.Table:
-    """Model prices of European options at the volatility in the ``vol`` column.
+          as_of=None, exercise: str | None = None) -> pa.Table:
+    """Model prices at the volatility in the ``vol`` column.
 
     ``model``: a name of the registry (``volsweep.MODELS``: each model's underlying column,
     ``spot`` or ``forward``, and its optional extra inputs).  Adds ``price`` (null where the
     row has no price) and ``status``.  ``columns`` maps our input names to yours, e.g.
     ``{"strike": "K"}``; ``as_of`` is the valuation time when expiries are timestamps.
+    ``exercise``: "american" or "european" for every row (``model="bsm"`` only for
+    American); None (the default): each row's style from an ``exercise`` column if the
+    input has one, else European.
     """
-    return _run("price", data, model=model, columns=columns, as_of=as_of)
+    return _run("price", data, model=model, columns=columns, as_of=as_of,
+                exercise=exercise)
 
 
 def implied_vol(data, model: str = DEFAULT_MODEL, columns: dict | None = None, *,
-                as_of=None) -> pa.Table:
+                as_of=None, exercise: str | None = None) -> pa.Table:
     """Implied volatilities from market prices.
 
     From a ``premium`` column: adds ``iv`` and ``status``.  From ``bid`` and ``ask``: adds
     ``iv_bid``, ``iv_ask`` and ``iv`` (from the mid), each with its own status
     (``status_bid``, ``status_ask``, and ``status`` for the mid), and
     ``iv_spread_uncertainty``, the half-spread divided by the vega at the mid vol, all from
-    one kernel pass.
+    one kernel pass.  ``exercise`` as in ``price``: American premiums are inverted on the
+    American price.
     """
-    return _run("implied_vol", data, model=model, columns=columns, as_of=as_of)
+    return _run("implied_vol", data, model=model, columns=columns, as_of=as_of,
+                exercise=exercise)
 
 
 def greeks(data, model: str = DEFAULT_MODEL, which=None, units: str = "raw",
-           columns: dict | None = None, *, as_of=None) -> pa.Table:
+           columns: dict | None = None, *, as_of=None,
+           exercise: str | None = None) -> pa.Table:
     """Analytic Greeks at the volatility in the ``vol`` column.
 
     ``which``: a Greek name or a list of them (None: all the model has; see
     ``GREEK_NAMES``).  ``units="raw"``: per 1.00 of vol, rate and yield, theta per year;
     ``units="desk"``: per vol point, per 1%, per calendar day.  Adds one column per Greek and
     ``status``.  Derivatives are against the model's underlying (its ``underlying`` in
-    ``volsweep.MODELS``: spot or forward).
+    ``volsweep.MODELS``: spot or forward).  ``exercise`` as in ``price``; American
+    exercise has delta, gamma, vega, theta, rho and div_rho.
     """
     return _run("greeks", data, model=model, which=which, units=units, columns=columns,
-                as_of=as_of)
+                as_of=as_of, exercise=exercise)
 
 
 def sweep(data, model: str = DEFAULT_MODEL, which=None, units: str = "raw",
-          columns: dict | None = None, *, as_of=None) -> pa.Table:
+          columns: dict | None = None, *, as_of=None,
+          exercise: str | None = None) -> pa.Table:
     """Implied vol from the quote, then the Greeks at that vol, in one kernel pass.
 
     Takes ``premium`` (or ``bid`` and ``ask``: the Greeks are at the mid vol) and adds the
     implied-vol outputs of ``implied_vol`` followed by the Greeks of ``greeks``.  Rows
-    without an implied vol get null Greeks and the implied-vol status.
+    without an implied vol get null Greeks and the implied-vol status.  ``exercise`` as in
+    ``price``.
     """
     return _run("sweep", data, model=model, which=which, units=units, columns=columns,
-                as_of=as_of)
+                as_of=as_of, exercise=exercise)

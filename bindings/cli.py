@@ -5,8 +5,13 @@ Commands:
   gen -n N -o FILE         write a synthetic snapshot to Parquet
   price IN -o OUT          price every row of a file (needs a vol column)
   sweep IN -o OUT          implied vols and Greeks for every row of a file or dataset
-  backfill SRC DST         sweep every partition of a dataset on Dask, resumably
+  backfill SRC DST         sweep (or --operation forwards/variance/smiles) every partition
+                           of a dataset on Dask, resumably
+  risk IN -o OUT           P&L of a book under spot x vol shocks per group (full revaluation)
+  forwards IN -o OUT       implied forward and discount per expiry (put-call parity)
+  variance IN -o OUT       model-free implied variance per expiry, or at fixed horizons
   smile IN --underlying NAME -o PICTURE   fit one underlying's SVI smiles and draw them
+  history VARIANCE -o OUT  constant-maturity vols per day from backfilled chain results
   bench                    run the benchmark report
 
 IN may be a Parquet file, a folder of Parquet files (hive partitions such as
@@ -38,7 +43,8 @@ class CliError(Exception):
 
 # the flags that set the options an OptionError names (bindings/_columns.py)
 CLI_WORDS = {"columns": "--map", "as_of": "--as-of", "quotes": "--quotes",
-             "keep": "--keep-columns", "unmap": "--map {name}="}
+             "keep": "--keep-columns", "exercise": "--exercise ",
+             "unmap": "--map {name}="}
 
 
 def _mapping(pairs) -> dict:
@@ -170,8 +176,58 @@ def cmd_demo(args) -> int:
     print("\n" + textwrap.fill(
         "The README's Speed figures are kernel-level rates on 2M rows (make bench); "
         "table-level calls run at about 0.7-1.0 of them, and less on a busy machine.", 88))
+    _demo_chains(min(snap.num_rows, 200_000), args.seed)
     print("Outputs are model values, not investment advice.")
     return 0
+
+
+def _demo_chains(rows: int, seed: int) -> None:
+    """Chain operations on a snapshot whose prices hide borrow and dividends."""
+    import numpy as np
+    import pyarrow.compute as pc
+
+    import volsweep
+    from volsweep.data_gen import make_snapshot
+
+    snap = make_snapshot(n_rows=rows, seed=seed, hidden_carry=True)
+    print(f"\nChains: {snap.num_rows:,d} contracts whose prices come from forwards with "
+          "hidden borrow and dividends, some quotes stale or outlying")
+    t0 = time.perf_counter()
+    fwd = volsweep.implied_forwards(snap, quotes="bid-ask")
+    t_fwd = time.perf_counter() - t0
+    ok = pc.equal(fwd["status"].cast("string"), "ok").to_numpy(zero_copy_only=False)
+    # the true forward of each group: the snapshot's rows are ordered by the same keys
+    truth = snap.group_by(["underlying", "expiry"], use_threads=False).aggregate(
+        [("true_forward", "max"), ("forward", "max")])
+    key = lambda t: [f"{u}|{e}" for u, e in zip(t["underlying"].to_pylist(),  # noqa: E731
+                                                   t["expiry"].to_pylist())]
+    where = dict(zip(key(truth), range(truth.num_rows)))
+    idx = np.array([where[k] for k in key(fwd)])
+    true_f = truth["true_forward_max"].to_numpy()[idx]
+    seen_f = truth["forward_max"].to_numpy()[idx]
+    got = fwd["forward"].to_numpy(zero_copy_only=False).astype(float)
+    hidden = ok & (np.abs(seen_f / true_f - 1) > 1e-4)
+    err_i = np.abs(got / true_f - 1)[hidden]
+    err_v = np.abs(seen_f / true_f - 1)[hidden]
+    print(f"implied_forwards: {fwd.num_rows:,d} expiries in {t_fwd:.2f} s, {ok.sum():,d} ok; "
+          f"on the {hidden.sum():,d} where S e^((r-q)T) misses the true forward by more "
+          f"than 1 bp, median relative error {np.median(err_v):.1e} from the visible "
+          f"columns, {np.median(err_i):.1e} implied from the quotes")
+    chain = volsweep.implied_forwards(snap.drop_columns(["forward", "spot", "div_yield",
+                                                         "premium"]),
+                                      quotes="bid-ask", attach=True)
+    vols = volsweep.implied_vol(chain, model="black76")
+    t0 = time.perf_counter()
+    fits = volsweep.fit_smiles(vols, model="black76")
+    t_fit = time.perf_counter() - t0
+    fit_ok = pc.equal(fits["status"].cast("string"), "ok")
+    rmse = fits.filter(fit_ok)["rmse_iv"].to_numpy()
+    bfly = pc.sum(pc.fill_null(fits["butterfly_arbitrage"], False)).as_py()
+    print(f"fit_smiles (raw SVI per expiry, Black-76 vols on the implied forwards): "
+          f"{fits.num_rows:,d} slices in {t_fit:.2f} s, {pc.sum(fit_ok).as_py():,d} ok, "
+          f"median rmse {100 * np.median(rmse):.2f} vol points, {bfly} with butterfly "
+          "arbitrage flagged")
+    print(_status_summary([fits]))
 
 
 def _rows_arg(args, least: int) -> int:
@@ -189,7 +245,7 @@ def cmd_gen(args) -> int:
     if not 0.0 <= args.bad_fraction <= 1.0:
         raise CliError(f"--bad-fraction must be between 0 and 1, got {args.bad_fraction}")
     snap = make_snapshot(n_rows=_rows_arg(args, 0), seed=args.seed,
-                         bad_fraction=args.bad_fraction)
+                         bad_fraction=args.bad_fraction, hidden_carry=args.hidden_carry)
     if output_format(args.output) == "parquet":
         write_snapshot(snap, args.output)       # the snapshot's own row groups and codec
     else:
@@ -207,7 +263,7 @@ def cmd_price(args) -> int:
     columns = _mapping(args.map)
     source = _open(args, columns)
     priced = _planned(prepare, "price", source.schema, model=args.model, columns=columns,
-                      as_of=args.as_of)
+                      as_of=args.as_of, exercise=args.exercise)
     return _stream(args, source, priced, priced.out_schema, "priced",
                    dictionary_columns(priced.out_schema), (priced.plan.source["vol"],))
 
@@ -248,7 +304,7 @@ def cmd_sweep(args) -> int:
 
     options = _sweep_options(args)
     source = _open(args, options["columns"])
-    plan = _planned(SweepPlan.build, source.schema, **options)
+    plan = _planned(SweepPlan.build, source.schema, exercise=args.exercise, **options)
     return _stream(args, source, plan.transform, plan.out_schema, "swept", plan.dictionary,
                    plan.vol_columns)
 
@@ -268,9 +324,17 @@ def cmd_backfill(args) -> int:
     from .dask_backfill import find_partitions
 
     parts = find_partitions(args.src)
+    options = _sweep_options(args)
+    if args.operation != "sweep":
+        options = dict(columns=options["columns"], as_of=options["as_of"],
+                       quotes=options["quotes"], operation=args.operation,
+                       by=_backfill_by(args.by), options=_group_extra(args))
+    elif args.by or args.min_pairs is not None or args.arbitrage_free:
+        raise CliError("--by, --min-pairs and --arbitrage-free apply to the group "
+                       "operations (--operation forwards, variance or smiles)")
     res = _planned(backfill, args.src, args.dst, scheduler=args.scheduler,
                    n_workers=args.workers, batch_rows=args.batch_rows,
-                   progress=Progress(len(parts), unit="partitions"), **_sweep_options(args))
+                   progress=Progress(len(parts), unit="partitions"), **options)
     print(f"backfill: {res.partitions:,d} partitions ({res.written:,d} written, "
           f"{res.skipped:,d} already complete), {res.rows_written:,d} rows written in "
           f"{res.seconds:.1f} s -> {args.dst}", file=sys.stderr)
@@ -278,6 +342,28 @@ def cmd_backfill(args) -> int:
     if summary:
         print(summary, file=sys.stderr)
     return 0
+
+
+def _backfill_by(text):
+    if text is None:
+        return None
+    words = tuple(w.strip() for w in text.split(",") if w.strip())
+    if not words:
+        raise CliError("--by expects a comma-separated list of column names")
+    return words
+
+
+def _group_extra(args) -> dict:
+    extra = {}
+    if args.min_pairs is not None:
+        if args.operation != "forwards":
+            raise CliError("--min-pairs applies to --operation forwards")
+        extra["min_pairs"] = args.min_pairs
+    if args.arbitrage_free:
+        if args.operation != "smiles":
+            raise CliError("--arbitrage-free applies to --operation smiles")
+        extra["arbitrage_free"] = True
+    return extra
 
 
 def cmd_bench(args) -> int:
@@ -340,6 +426,16 @@ def _model_arg(p) -> None:
                    help=f"{lines.replace('%', '%%')} (default: %(default)s)")
 
 
+def _exercise_arg(p) -> None:
+    """--exercise: the exercise style of every row (the registry's American entries)."""
+    from volsweep.kernel.registry import AMERICAN, EXERCISES
+
+    p.add_argument("--exercise", type=str.lower, choices=list(EXERCISES), default=None,
+                   help="exercise style of every row: american (models "
+                   f"{', '.join(AMERICAN)}) or european; default: each row's style from an "
+                   "'exercise' column (american/european) if IN has one, else european")
+
+
 def _sweep_args(p) -> None:
     import volsweep
 
@@ -374,6 +470,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help=".parquet, .csv, .csv.gz, .arrow, .feather or .ipc")
     g.add_argument("--seed", type=int, default=0)
     g.add_argument("--bad-fraction", type=float, default=0.01)
+    g.add_argument("--hidden-carry", action="store_true",
+                   help="price from forwards with borrow costs and cash dividends the columns "
+                   "do not show, with 2%% stale or outlying quotes (adds true_forward and "
+                   "parity_flag): the data volsweep forwards is for")
     g.add_argument("--overwrite", action="store_true")
     g.set_defaults(func=cmd_gen)
 
@@ -382,6 +482,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "CSV) into the Parquet file OUT, streaming batch by batch.")
     _io_args(pr)
     _model_arg(pr)
+    _exercise_arg(pr)
     _map_args(pr)
     pr.set_defaults(func=cmd_price)
 
@@ -396,6 +497,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=_SWEEP_EPILOG)
     _io_args(sw)
     _sweep_args(sw)
+    _exercise_arg(sw)
     sw.set_defaults(func=cmd_sweep)
 
     bf = sub.add_parser(
@@ -416,10 +518,28 @@ def build_parser() -> argparse.ArgumentParser:
                     help="worker processes of the local cluster (default: one per core)")
     bf.add_argument("--batch-rows", type=int, default=_default_batch_rows(), metavar="N",
                     help="rows per batch (default: %(default)s)")
+    bf.add_argument("--operation", default="sweep",
+                    choices=["sweep", "forwards", "variance", "smiles"],
+                    help="sweep: every row (default); forwards, variance, smiles: one row "
+                    "per group of --by per partition (implied_forwards, "
+                    "model_free_variance, fit_smiles on implied forwards)")
+    bf.add_argument("--by", metavar="LIST",
+                    help="group columns of the group operations (default: underlying,expiry)")
+    bf.add_argument("--min-pairs", type=int, metavar="N",
+                    help="forwards: fewest two-sided strikes a group's fit uses (default: 3)")
+    bf.add_argument("--arbitrage-free", action="store_true",
+                    help="smiles: keep every fitted slice free of butterfly arbitrage")
     _sweep_args(bf)
     bf.set_defaults(func=cmd_backfill)
 
-    __import__("volsweep.cli_smiles", fromlist=["add_parser"]).add_parser(sub)   # smile
+    from . import cli_risk
+    cli_risk.add_parser(sub)
+    from .cli_chains import add_parser as _add_chain_commands
+    _add_chain_commands(sub)                  # forwards, variance
+    from .cli_smiles import add_parser as _add_smile_command
+    _add_smile_command(sub)                   # smile
+    from .cli_history import add_parser as _add_history_command
+    _add_history_command(sub)                 # history
 
     b = sub.add_parser("bench", help="benchmark report (source checkout)")
     b.add_argument("-n", "--rows", type=int, default=2_000_000)

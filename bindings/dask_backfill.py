@@ -1,9 +1,11 @@
-"""Historical backfill on Dask: every partition of a Parquet dataset, swept in parallel.
+"""Historical backfill on Dask: every partition of a Parquet dataset, in parallel.
 
 ``backfill(src, dst)`` finds the partitions of ``src`` (the leaf folders holding data
 files, e.g. hive folders ``date=2031-03-14/``; a flat folder is one partition), runs one
-Dask task per partition, and writes ``dst/<same relative folder>/part-0.parquet``: the
-partition's rows, in order (its files in name order), with implied vols and Greeks.
+Dask task per partition, and writes ``dst/<same relative folder>/part-0.parquet``: for
+the sweep, the partition's rows, in order (its files in name order), with implied vols
+and Greeks; for a group operation (``operation="forwards"``, ``"variance"``,
+``"smiles"``; see ``group_backfill.py``), one row per group of the partition.
 
 Commit protocol: a task writes a hidden temporary file in the partition's folder, fsyncs
 it and renames it to ``part-0.parquet``; the rename is the commit.  A partition whose
@@ -30,13 +32,17 @@ import time
 from collections import Counter
 from dataclasses import dataclass, field
 
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from volsweep.kernel.registry import DEFAULT_MODEL
 from ._columns import OptionError, numeric_columns
 from .atomic_parquet import stale_temps
 from .file_errors import StreamError, one_line
+from .group_backfill import (GROUP_OPERATIONS, complete as group_complete, group_options,
+                             group_stamp, run_group, stamped_rows, write_group_table)
 from .input_files import DEFAULT_BATCH_ROWS, data_files, open_input
+from .status_counts import count_statuses
 from .stream_to_parquet import stream_to_parquet
 from .sweep_plan import SWEEP_STAMP_KEY, SweepPlan
 
@@ -64,6 +70,7 @@ class BackfillResult:
     schema: object = None         # the input schema (of the first partition)
     workers: list = field(default_factory=list)    # per task: (pid, numba threads, compiled)
     kernels: set = field(default_factory=set)      # kernel source hashes the tasks ran
+    task_seconds: float = 0.0     # first written task's start to the last one's end
 
     @property
     def rows(self) -> int:
@@ -101,17 +108,11 @@ def _source_rows(files) -> int | None:
 def _complete_rows(target: str, files, stamp: bytes) -> int | None:
     """Rows of a committed ``target`` if it is complete for ``files`` and was made with the
     same options (``stamp``), else None (then it is made again and replaced atomically)."""
-    if not os.path.exists(target):
-        return None
-    try:
-        md = pq.read_metadata(target)
-        made_with = (pq.read_schema(target).metadata or {}).get(SWEEP_STAMP_KEY)
-    except Exception:   # unreadable: redo it
-        return None
-    if made_with != stamp:
+    rows = stamped_rows(target, SWEEP_STAMP_KEY, stamp)
+    if rows is None:
         return None
     want = _source_rows(files)
-    return md.num_rows if want is None or want == md.num_rows else None
+    return rows if want is None or want == rows else None
 
 
 def _limit_threads() -> int:
@@ -155,7 +156,7 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     from volsweep.kernel._cache import kernel_source_hash
 
     info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
-                kernel=kernel_source_hash().hex()[:16])
+                kernel=kernel_source_hash().hex()[:16], start=time.time())
     try:
         source = _open_partition(part, batch_rows, options)
         plan = SweepPlan.build(source.schema, **options)
@@ -172,7 +173,7 @@ def sweep_partition(part: Partition, dst_root: str, options: dict, batch_rows: i
     except (ValueError, TypeError, OSError) as exc:
         raise StreamError(f"partition {part.rel}: {one_line(exc)}") from None
     info["compiled"] = _misses() - before
-    return dict(info, state="written", rows=res.rows, statuses=res.statuses,
+    return dict(info, state="written", rows=res.rows, statuses=res.statuses, end=time.time(),
                 high_vols=res.high_vols, unreadable=source.unreadable)
 
 
@@ -200,17 +201,56 @@ def worker_environ() -> dict:
     return env
 
 
-def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None, as_of=None,
-             quotes="auto", keep=None, scheduler=None, n_workers=None,
-             batch_rows=DEFAULT_BATCH_ROWS, progress=None) -> BackfillResult:
-    """Sweep every partition of the dataset ``src`` into the same partitions under ``dst``.
+def group_partition(part: Partition, dst_root: str, operation: str, options: dict,
+                    batch_rows: int) -> dict:
+    """One task of a group operation: the whole partition through ``run_group`` into
+    ``dst_root/<rel>/part-0.parquet`` (or skip it when complete)."""
+    threads = _limit_threads()
+    target = os.path.join(os.path.normpath(os.path.join(dst_root, part.rel)), PART_NAME)
+    from volsweep.kernel._cache import kernel_source_hash
 
-    ``model``, ``which``, ``units``, ``columns``, ``as_of``: as for ``volsweep.sweep``.
-    ``quotes``: ``"auto"``, ``"premium"`` or ``"bid-ask"`` (which quote to invert when the
-    input has both); ``keep``: input columns to copy (None: all).  ``scheduler``: address
-    of a running Dask scheduler, or a ``distributed.Client``; None starts a LocalCluster
-    of ``n_workers`` (default: one per core) single-threaded worker processes.
-    ``progress``: a ``progress.Progress`` counting partitions, or None.
+    info = dict(rel=part.rel, pid=os.getpid(), threads=threads, compiled=0,
+                kernel=kernel_source_hash().hex()[:16], start=time.time())
+    try:
+        stamp = group_stamp(operation, options, _source_rows(part.files))
+        done = group_complete(target, stamp)
+        if done is not None:
+            return dict(info, state="skipped", rows=done, statuses={})
+        source = _open_partition(part, batch_rows, options)
+        table = pa.Table.from_batches(list(source.batches()), source.schema)
+        before = _misses()
+        out = run_group(table, operation, options)
+        os.makedirs(os.path.dirname(target), exist_ok=True)
+        write_group_table(out, target, stamp)
+    except OptionError as exc:
+        raise exc.within(f"partition {part.rel}") from None
+    except (ValueError, TypeError, OSError) as exc:
+        raise StreamError(f"partition {part.rel}: {one_line(exc)}") from None
+    info["compiled"] = _misses() - before
+    counts: dict = {}
+    count_statuses(out, counts)
+    return dict(info, state="written", rows=out.num_rows, statuses=counts, end=time.time(),
+                unreadable=source.unreadable)
+
+
+def backfill(src, dst, *, operation="sweep", model=DEFAULT_MODEL, which=None, units="raw",
+             columns=None, as_of=None, quotes="auto", keep=None, by=None, options=None,
+             scheduler=None, n_workers=None, batch_rows=DEFAULT_BATCH_ROWS,
+             progress=None) -> BackfillResult:
+    """Run ``operation`` over every partition of the dataset ``src`` into the same
+    partitions under ``dst``.
+
+    ``operation``: ``"sweep"`` (every row, as ``volsweep.sweep``), or a group operation:
+    ``"forwards"`` (``implied_forwards``), ``"variance"`` (``model_free_variance``),
+    ``"smiles"`` (forwards implied and attached, Black-76 implied vols on them, then
+    ``fit_smiles``), one output row per group of ``by`` (default underlying, expiry).
+    ``model``, ``which``, ``units``, ``keep``: as for ``volsweep.sweep`` (sweep only).
+    ``columns``, ``as_of``, ``quotes``: as for the operation.  ``options``: further
+    keyword options of a group operation (e.g. ``{"min_pairs": 4}``,
+    ``{"arbitrage_free": True}``).  ``scheduler``: address of a running Dask scheduler,
+    or a ``distributed.Client``; None starts a LocalCluster of ``n_workers`` (default:
+    one per core) single-threaded worker processes.  ``progress``: a
+    ``progress.Progress`` counting partitions, or None.
 
     Returns a ``BackfillResult`` (partitions written and skipped, rows, status counts).
     Schema problems in the first partition raise before any cluster is started.
@@ -220,11 +260,32 @@ def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=
     dst = os.path.abspath(os.fspath(dst))
     if dst == src or dst.startswith(src + os.sep):
         raise StreamError(f"the output {dst} must not be inside the input {src}")
+    if operation != "sweep" and operation not in GROUP_OPERATIONS:
+        raise ValueError(f"unknown operation {operation!r}; expected one of "
+                         f"{', '.join(('sweep',) + GROUP_OPERATIONS)}")
     parts = find_partitions(src)
-    options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of,
-                   quotes=quotes, keep=keep)
-    schema = _open_partition(parts[0], batch_rows, options).schema
-    plan = SweepPlan.build(schema, **options)       # schema errors now
+    if operation == "sweep":
+        if by is not None or options:
+            raise ValueError("by and options apply to the group operations, not to 'sweep'")
+        options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of,
+                       quotes=quotes, keep=keep)
+        schema = _open_partition(parts[0], batch_rows, options).schema
+        plan = SweepPlan.build(schema, **options)       # schema errors now
+        stamp_of = lambda part: plan.stamp  # noqa: E731
+        complete = _complete_rows
+        task = dict(fn=sweep_partition, options=options)
+    else:
+        if model != DEFAULT_MODEL or which is not None or units != "raw" or keep is not None:
+            raise ValueError(f"model, which, units and keep apply to 'sweep', not to "
+                             f"{operation!r}")
+        options = group_options(operation, by, columns, as_of, dict(options or {},
+                                                                     quotes=quotes))
+        schema = _open_partition(parts[0], batch_rows, options).schema
+        run_group(schema.empty_table(), operation, options)   # schema errors now
+        stamp_of = lambda part: group_stamp(operation, options,  # noqa: E731
+                                            _source_rows(part.files))
+        complete = lambda target, files, stamp: group_complete(target, stamp)  # noqa: E731
+        task = dict(fn=group_partition, operation=operation, options=options)
     os.makedirs(dst, exist_ok=True)
     _clean_temps(dst, parts)
     # complete partitions are skipped here (no cluster at all for a finished backfill) and
@@ -232,7 +293,7 @@ def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=
     results = []
     todo = []
     for part in parts:
-        rows = _complete_rows(os.path.join(dst, part.rel, PART_NAME), part.files, plan.stamp)
+        rows = complete(os.path.join(dst, part.rel, PART_NAME), part.files, stamp_of(part))
         if rows is None:
             todo.append(part)
         else:
@@ -240,7 +301,7 @@ def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=
     if progress is not None:
         progress.update(len(results))
     if todo:
-        results += _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress)
+        results += _run_tasks(todo, dst, task, batch_rows, scheduler, n_workers, progress)
     elif progress is not None:
         progress.close()
     _clean_temps(dst, parts)
@@ -259,10 +320,12 @@ def backfill(src, dst, *, model=DEFAULT_MODEL, which=None, units="raw", columns=
         seconds=time.perf_counter() - t0, statuses=statuses, high_vols=high_vols,
         unreadable=unreadable, schema=schema,
         workers=[(r["pid"], r["threads"], r["compiled"]) for r in results if "pid" in r],
-        kernels={r["kernel"] for r in results if "kernel" in r})
+        kernels={r["kernel"] for r in results if "kernel" in r},
+        task_seconds=(max(r["end"] for r in written) - min(r["start"] for r in written)
+                      if written else 0.0))
 
 
-def _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress) -> list:
+def _run_tasks(todo, dst, task, batch_rows, scheduler, n_workers, progress) -> list:
     import distributed   # the optional dependency: only here
 
     saved = {k: os.environ.get(k) for k in list(worker_environ()) + ["PYTHONHASHSEED"]}
@@ -273,8 +336,10 @@ def _run_tasks(todo, dst, options, batch_rows, scheduler, n_workers, progress) -
         _restore_environ(saved)
         raise
     try:
-        futures = client.map(sweep_partition, todo, dst_root=dst, options=options,
-                             batch_rows=batch_rows, pure=False)
+        kwargs = dict(task)
+        fn = kwargs.pop("fn")
+        futures = client.map(fn, todo, dst_root=dst, batch_rows=batch_rows, pure=False,
+                             **kwargs)
         # with_results: gathered through this client even when the process has another
         for _, result in distributed.as_completed(futures, with_results=True):
             results.append(result)

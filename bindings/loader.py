@@ -63,18 +63,18 @@ _NOTICE_AFTER = 2.0        # seconds: a load that takes longer is a compile (loa
 #                            from the disk cache takes milliseconds, ~1 s on a loaded machine)
 
 
-def served_mask(model: str, mask: int) -> int:
+def served_mask(model: str, mask: int, exercise: str = "european") -> int:
     """The compiled Greek set (a mask of ``registry.GREEK_SETS``) that serves ``mask``."""
-    for cand in _registry.greek_set_masks(model):
+    for cand in _registry.greek_set_masks(model, exercise):
         if mask & ~cand == 0:
             return cand
     raise ValueError(f"mask {mask:#x} holds Greeks model {model!r} does not define")
 
 
-def _touch(model: str, op: str, mask: int) -> None:
+def _touch(model: str, op: str, mask: int, exercise: str = "european") -> None:
     """Run one kernel on one row and on BLOCK + 1 rows of valid inputs (both code paths:
     the row loop called directly and the parallel loop)."""
-    entry = _registry.model(model)
+    entry = _registry.model(model, exercise)
     kern = entry.kernels[op]
     n = BLOCK + 1
     und = np.full(n, 1.0)
@@ -106,11 +106,13 @@ def _touch(model: str, op: str, mask: int) -> None:
             raise ValueError(f"unknown kernel operation {op!r}")
 
 
-def load_kernel(model: str, op: str, mask: int = 0) -> float:
+def load_kernel(model: str, op: str, mask: int = 0, exercise: str = "european") -> float:
     """Load (or compile) one kernel variant once per process; returns the seconds spent
     (0 when it was already loaded).  A load that takes longer than two seconds is a
-    compile: a line on stderr says so while it runs, and another when it is done."""
-    key = (model, op, mask)
+    compile: a line on stderr says so while it runs, and another when it is done.
+    ``exercise``: the registry entry's exercise style (American kernels are their own)."""
+    european = exercise == "european"
+    key = (model, op, mask) if european else (model, op, mask, exercise)
     if key in _LOADED:
         return 0.0
     with _LOCK:
@@ -122,7 +124,10 @@ def load_kernel(model: str, op: str, mask: int = 0) -> float:
         def work():
             try:
                 with launch_guard():
-                    _touch(model, op, mask)
+                    if european:
+                        _touch(model, op, mask)
+                    else:
+                        _touch(model, op, mask, exercise)
             except BaseException as exc:       # re-raised in the caller's thread
                 failed.append(exc)
 
@@ -131,7 +136,8 @@ def load_kernel(model: str, op: str, mask: int = 0) -> float:
         worker.join(_NOTICE_AFTER)
         noticed = worker.is_alive()
         if noticed:
-            what = f"{model} {op}" + (f" ({_set_label(model, mask)})" if mask else "")
+            what = (f"{model} {op}" + ("" if european else f" {exercise}")
+                    + (f" ({_set_label(model, mask)})" if mask else ""))
             print(f"volsweep: compiling the {what} kernel (once per machine; "
                   "volsweep.warmup() does all of them up front)...", file=sys.stderr,
                   flush=True)
@@ -152,23 +158,33 @@ def _set_label(model: str, mask: int) -> str:
 
 
 def kernel_variants(models=None, which=None, sweep: bool = True, bid_ask: bool = True):
-    """The (model, operation, mask) kernel variants calls can use (see ``warmup``)."""
+    """The kernel variants calls can use (see ``warmup``): (model, operation, mask) for
+    European exercise, (model, operation, mask, "american") for the American kernels of
+    the models that have them (registry ``AMERICAN``)."""
     models = _registry.MODEL_NAMES if models is None else models
     if isinstance(models, str):
         models = (models,)
     out = []
     for name in models:
-        entry = _registry.model(name)
-        sets = _registry.greek_set_masks(name)
-        if which is not None:
-            sets = (served_mask(name, _greeks.greek_mask(which, name)),)
-        out += [(entry.name, "price", 0), (entry.name, "implied_vol", 0)]
-        out += [(entry.name, "greeks", m) for m in sets]
-        if sweep:
-            out += [(entry.name, "sweep", m) for m in sets]
-        if bid_ask:
-            out += [(entry.name, "bid_ask", m)
-                    for m in sorted({served_mask(name, m | _VEGA) for m in sets})]
+        for exercise in _registry.EXERCISES:
+            if exercise == "american" and name not in _registry.AMERICAN:
+                continue
+            tail = () if exercise == "european" else (exercise,)
+            entry = _registry.model(name, exercise)
+            sets = _registry.greek_set_masks(name, exercise)
+            if which is not None:
+                want = _greeks.greek_mask(which, name)
+                if want & ~_registry.greek_set_masks(name, exercise)[-1]:
+                    continue            # Greeks these kernels do not compute
+                sets = (served_mask(name, want, exercise),)
+            out += [(entry.name, "price", 0) + tail, (entry.name, "implied_vol", 0) + tail]
+            out += [(entry.name, "greeks", m) + tail for m in sets]
+            if sweep:
+                out += [(entry.name, "sweep", m) + tail for m in sets]
+            if bid_ask:
+                out += [(entry.name, "bid_ask", m) + tail
+                        for m in sorted({served_mask(name, m | _VEGA, exercise)
+                                         for m in sets})]
     return out
 
 
@@ -181,7 +197,8 @@ def warmup(models=None, which=None, sweep: bool = True, bid_ask: bool = True) ->
     Returns the seconds spent per kernel variant ("model op [Greek set]").
     """
     spent = {}
-    for model, op, mask in kernel_variants(models, which, sweep, bid_ask):
-        label = f"{model} {op}" + (f" ({_set_label(model, mask)})" if mask else "")
-        spent[label] = load_kernel(model, op, mask)
+    for model, op, mask, *exercise in kernel_variants(models, which, sweep, bid_ask):
+        label = (f"{model} {op}" + "".join(f" {e}" for e in exercise)
+                 + (f" ({_set_label(model, mask)})" if mask else ""))
+        spent[label] = load_kernel(model, op, mask, *exercise)
     return spent

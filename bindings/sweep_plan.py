@@ -84,7 +84,7 @@ class SweepPlan:
 
     @classmethod
     def build(cls, schema: pa.Schema, *, model=DEFAULT_MODEL, which=None, units="raw", columns=None,
-              as_of=None, quotes="auto", keep=None) -> "SweepPlan":
+              as_of=None, quotes="auto", keep=None, exercise=None) -> "SweepPlan":
         from .api import prepare
 
         columns = dict(columns or {})
@@ -96,6 +96,8 @@ class SweepPlan:
         readable = [i for i, n in enumerate(names) if n in maybe_read and n not in hidden]
         kept = _kept_positions(names, keep)
         options = dict(model=model, which=which, units=units, columns=columns, as_of=as_of)
+        if exercise is not None:          # in the stamp only when given (older stamps hold)
+            options["exercise"] = exercise
         prepared = prepare("sweep", pa.schema([schema.field(i) for i in readable]), **options)
         kept_schema = pa.schema([schema.field(i) for i in kept])
         check_no_clash(kept_schema, prepared.outputs)

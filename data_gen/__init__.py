@@ -50,14 +50,21 @@ side of a clean quote has an implied vol.  On spoiled rows only the spoiled colu
 change: ``true_vol``, ``model_price`` and ``forward`` still describe the contract as it
 was before (an expired row keeps the forward of its original expiry).
 ``quotes.EXPECTED_STATUS`` maps each flag to the status a checker should report.
+
+``make_snapshot(..., hidden_carry=True)`` makes the prices from a forward the visible
+columns do not give (borrow costs and cash dividends; ``forward`` is then only what
+S exp((r - q) T) says) and spoils a few calls or puts with stale or outlying quotes; it
+adds ``true_forward`` (the forward the prices were made from) and ``parity_flag``
+(``clean``, ``stale``, ``outlier``): see ``data_gen.carry`` and ``CHAIN_SCHEMA``.
 """
 
+from .carry import PARITY_FLAGS
 from .history import make_history, write_history
 from .quotes import EXPECTED_STATUS, FLAGS
-from .snapshot import DEFAULT_AS_OF, SCHEMA, make_snapshot, write_snapshot
+from .snapshot import CHAIN_SCHEMA, DEFAULT_AS_OF, SCHEMA, make_snapshot, write_snapshot
 from .universe import VENUE, VENUE_CODE, make_universe
 
 __all__ = [
     "make_snapshot", "write_snapshot", "make_history", "write_history", "make_universe",
-    "SCHEMA", "FLAGS", "EXPECTED_STATUS", "DEFAULT_AS_OF", "VENUE", "VENUE_CODE",
+    "SCHEMA", "CHAIN_SCHEMA", "FLAGS", "PARITY_FLAGS", "EXPECTED_STATUS", "DEFAULT_AS_OF", "VENUE", "VENUE_CODE",
 ]

@@ -6,7 +6,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import svi
+from . import carry, svi
 from ._bsm import black_price, forward_price
 from .quotes import FLAGS, _largest_remainder, inject_bad, make_quotes
 from .universe import (K_LOG_HI, K_LOG_LO, STRIKE_SDS, VENUE, VENUE_CODE, atm_vol,
@@ -41,6 +41,11 @@ SCHEMA = pa.schema([
     ("quote_flag", pa.dictionary(pa.int8(), pa.string())),
 ])
 
+# make_snapshot(hidden_carry=True): the forward the prices were made from, and the labels
+# of the stale and outlying quotes (data_gen.carry)
+CHAIN_SCHEMA = SCHEMA.append(pa.field("true_forward", pa.float64())).append(
+    pa.field("parity_flag", pa.dictionary(pa.int8(), pa.string())))
+
 
 def parse_as_of(as_of):
     """datetime64[s] (UTC) from None, a str, a date, a datetime or a numpy datetime64.
@@ -74,18 +79,24 @@ def _grid_span(k_lo, k_hi, step):
     return np.maximum(np.ceil(k_lo / step - 1e-9), 1.0), np.floor(k_hi / step + 1e-9)
 
 
-def make_snapshot(n_rows=1_000_000, seed=0, bad_fraction=0.01, n_underlyings=600, as_of=None):
+def make_snapshot(n_rows=1_000_000, seed=0, bad_fraction=0.01, n_underlyings=600, as_of=None,
+                  *, hidden_carry=False, off_parity_fraction=0.02):
     """A seeded synthetic snapshot of the fictional venue, ``n_rows`` rows exactly.
 
-    Deterministic in (n_rows, seed, bad_fraction, n_underlyings, as_of).  Rows are ordered
-    by underlying, expiry, strike, then call before put.  See the package docstring for
-    the columns.
+    Deterministic in (n_rows, seed, bad_fraction, n_underlyings, as_of) and the two
+    options.  Rows are ordered by underlying, expiry, strike, then call before put.  See
+    the package docstring for the columns.  ``hidden_carry=True``: the prices come from a
+    forward with borrow costs and cash dividends that the visible columns do not show,
+    and ``off_parity_fraction`` of the clean rows are stale or outlying quotes (see
+    ``data_gen.carry``); two more columns, ``true_forward`` and ``parity_flag``
+    (``CHAIN_SCHEMA``).
     """
     if n_rows < 0:
         raise ValueError("n_rows must be >= 0")
     as_of = parse_as_of(as_of)
     universe = make_universe(n_underlyings, seed)
-    return _build(universe, int(n_rows), _snapshot_rng(seed, as_of), bad_fraction, as_of, seed)
+    return _build(universe, int(n_rows), _snapshot_rng(seed, as_of), bad_fraction, as_of, seed,
+                  hidden_carry=hidden_carry, off_parity_fraction=off_parity_fraction)
 
 
 def _snapshot_rng(seed, as_of):
@@ -93,7 +104,8 @@ def _snapshot_rng(seed, as_of):
     return np.random.default_rng([int(seed), _SNAP_TAG, day])
 
 
-def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
+def _build(uni, n_rows, rng, bad_fraction, as_of, seed, hidden_carry=False,
+           off_parity_fraction=0.0):
     as_of_day = as_of.astype("datetime64[D]")
     days, tier_max, is_long = listed_expiries(as_of_day)
     dte = (days - as_of_day).astype(np.int64)
@@ -105,11 +117,16 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
     s0 = uni.spot[su]
     q = uni.div_yield[su]
     r = uni.curve(t)
-    fwd = forward_price(s0, r, q, t)
+    fwd = forward_price(s0, r, q, t)      # the forward the visible columns give
+    mkt = fwd                              # the forward the prices are made from
+    if hidden_carry:
+        crng = carry.carry_rng(seed, as_of)
+        borrow, cash, first = carry.hidden_terms(uni.n, uni.spot, crng)
+        mkt = carry.true_forward(s0, uni.curve, r, q, t, borrow[su], cash[su], first[su])
     a, b, rho, m, sig = smile_params(uni, su, t)
     sd = atm_vol(uni, su, t) * np.sqrt(t)
-    k_lo = fwd * np.exp(np.maximum(-STRIKE_SDS * sd, K_LOG_LO))
-    k_hi = fwd * np.exp(np.minimum(STRIKE_SDS * sd, K_LOG_HI))
+    k_lo = mkt * np.exp(np.maximum(-STRIKE_SDS * sd, K_LOG_LO))
+    k_hi = mkt * np.exp(np.minimum(STRIKE_SDS * sd, K_LOG_HI))
     notch = np.searchsorted(_STEP_BREAKS, s0, side="right") - (t <= 1 / 12) + (t > 0.75)
     base = _STEPS[np.clip(notch, 0, _STEPS.size - 1)]
     i_lo, i_hi = _grid_span(k_lo, k_hi, base)
@@ -130,7 +147,7 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
             break
         step = np.where(short, _nice_floor(step * (1.0 - 1e-6)), step)
         i_lo, i_hi = _grid_span(k_lo, k_hi, step)
-    i_atm = np.maximum(np.rint(fwd / step), 1.0)
+    i_atm = np.maximum(np.rint(mkt / step), 1.0)
     gap = (i_hi - i_lo) / np.maximum(cnt - 1, 1)
 
     # ---- per row
@@ -144,7 +161,7 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
     strike = strike_pair[row >> 1]
     is_call = (row & 1) == 0
 
-    tr, fr, rr = t[sl], fwd[sl], r[sl]
+    tr, fr, rr = t[sl], mkt[sl], r[sl]
     k = np.log(strike / fr)
     w = svi.total_variance(k, a[sl], b[sl], rho[sl], m[sl], sig[sl])
     true_vol = np.sqrt(w / tr)
@@ -160,6 +177,18 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
 
     cols = {"premium": premium, "bid": bid, "ask": ask, "strike": strike.copy(), "expiry_years": tr.copy()}
     flags = inject_bad(cols, lower, bad_fraction, rng)
+    if hidden_carry:
+        parity = carry.spoil_pairs(flags == 0, is_call, off_parity_fraction, crng)
+        for kind, lo_f, hi_f in ((carry.STALE, 0.01, 0.04), (carry.OUTLIER, 0.15, 0.5)):
+            rows = np.flatnonzero(parity == kind)
+            move = crng.uniform(lo_f, hi_f, rows.size) * np.where(crng.random(rows.size) < 0.5, -1.0, 1.0)
+            if kind == carry.STALE:     # priced at another level of the underlying
+                off = black_price(fr[rows] * (1.0 + move), strike[rows], w[rows], disc[rows], is_call[rows])
+            else:                       # priced off the model
+                off = model[rows] * (1.0 + move)
+            p_, b_, a_ = make_quotes(off, lower[rows], upper[rows], otm[rows], tr[rows],
+                                     uni.liquidity[su][sl][rows], crng)
+            cols["premium"][rows], cols["bid"][rows], cols["ask"][rows] = p_, b_, a_
 
     as_of_ms = as_of.astype("datetime64[ms]").astype(np.int64)
     expiry_ms = as_of_ms + np.rint(cols["expiry_years"] * (365 * 86400)).astype(np.int64) * 1000
@@ -170,7 +199,7 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
         pa.array(expiry_ms, type=pa.int64()).cast(ts),
         pa.array(cols["expiry_years"]),
         pa.array(s0[sl]),
-        pa.array(fr),
+        pa.array(fwd[sl]),
         pa.array(q[sl]),
         pa.array(rr),
         pa.array(cols["strike"]),
@@ -190,7 +219,14 @@ def _build(uni, n_rows, rng, bad_fraction, as_of, seed):
         "volsweep.as_of": str(as_of) + "Z",
         "volsweep.bad_fraction": repr(float(bad_fraction)),
     }
-    return pa.Table.from_arrays(arrays, schema=SCHEMA.with_metadata(meta))
+    schema = SCHEMA
+    if hidden_carry:
+        arrays += [pa.array(fr), pa.DictionaryArray.from_arrays(
+            pa.array(parity, pa.int8()), pa.array(carry.PARITY_FLAGS, pa.string()))]
+        schema = CHAIN_SCHEMA
+        meta["volsweep.hidden_carry"] = "true"
+        meta["volsweep.off_parity_fraction"] = repr(float(off_parity_fraction))
+    return pa.Table.from_arrays(arrays, schema=schema.with_metadata(meta))
 
 
 def write_snapshot(table, path, row_group_size=128 * 1024, compression="zstd"):

@@ -26,6 +26,7 @@ No Arrow and no bindings here: this module imports the kernels only.
 
 from __future__ import annotations
 
+import importlib
 from dataclasses import dataclass, field
 
 from . import bachelier as _bachelier
@@ -155,6 +156,34 @@ MODELS = {
     ),
 }
 
+# American exercise: kernels of their own (kernel/american.py) and one entry per model that
+# has them, beside the European entry of the same name.  The bindings choose the entry by
+# the ``exercise=`` argument or an ``exercise`` column; MODELS stays the European table.
+# Imported by name, not with a relative import: greeks.py imports this module, and the
+# kernel cache keys a module on the sources of every kernel module it imports (_cache.py),
+# so a relative import here would recompile every Greeks loop on each edit of american.py
+# (none of which calls it).
+_american = importlib.import_module(f"{__package__}.american")
+
+_EXERCISE = Input("exercise", 1.0, "exercise style per row: american or european (any "
+                                   "case); absent: the exercise= argument")
+
+AMERICAN = {
+    "bsm": Model(
+        name="bsm",
+        doc="Black-Scholes-Merton with American exercise: options on a spot price with a "
+            "continuous dividend yield, exercisable any time up to expiry",
+        underlying="spot",
+        extras=(_DIV_YIELD, _EXERCISE),
+        greeks=_american.AMERICAN_GREEKS,
+        kernels={"price": _american.price, "implied_vol": _american.implied_vol,
+                 "greeks": _american.greeks, "sweep": _american.sweep,
+                 "bid_ask": _american.bid_ask},
+        exercise="american",
+    ),
+}
+EXERCISES = ("european", "american")
+
 MODEL_NAMES = tuple(MODELS)
 DEFAULT_MODEL = "bsm"     # the model of every function and command that is not told one
 
@@ -179,17 +208,27 @@ KERNEL_OPERATIONS = ("price", "implied_vol", "greeks", "sweep", "bid_ask")
 GREEK_SETS = (("vega",), ("delta", "gamma", "vega", "theta", "rho"), None)
 
 
-def greek_set_masks(name) -> tuple:
+def greek_set_masks(name, exercise="european") -> tuple:
     """Masks of ``GREEK_SETS`` for model ``name``, smallest first, without repeats."""
-    m = model(name)
+    m = model(name, exercise)
     masks = {_greeks.greek_mask(m.greeks if s is None else
                                 tuple(g for g in s if g in m.greeks), name)
              for s in GREEK_SETS}
     return tuple(sorted(masks, key=lambda k: (bin(k).count("1"), k)))
 
 
-def model(name) -> Model:
-    """The registry entry of ``name``; ValueError naming the known models otherwise."""
+def model(name, exercise="european") -> Model:
+    """The registry entry of ``name`` with this exercise style ("european": ``MODELS``,
+    "american": ``AMERICAN``); ValueError naming the known ones otherwise."""
+    if exercise == "american":
+        if name in AMERICAN:
+            return AMERICAN[name]
+        model(name)                     # an unknown model is said as such
+        raise ValueError(f"model {name!r} has no American exercise; American exercise: "
+                         f"{', '.join(AMERICAN)}")
+    if exercise != "european":
+        raise ValueError(f"unknown exercise {exercise!r}; expected one of "
+                         f"{', '.join(EXERCISES)}")
     try:
         return MODELS[name]
     except (KeyError, TypeError):
@@ -198,12 +237,15 @@ def model(name) -> Model:
 
 
 def _check():
-    for m in MODELS.values():
+    for m in list(MODELS.values()) + list(AMERICAN.values()):
         assert set(m.kernels) == set(KERNEL_OPERATIONS), m.name
         assert m.underlying in ("spot", "forward"), m.name
         assert all(g in GREEKS for g in m.greeks), m.name
         assert set(m.units) <= set(m.greeks), m.name
         assert m.vol in ("lognormal", "normal"), m.name
+        assert m.exercise in EXERCISES, m.name
+    for name, m in AMERICAN.items():
+        assert name in MODELS and m.name == name and m.exercise == "american", name
 
 
 _check()

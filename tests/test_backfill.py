@@ -165,12 +165,13 @@ class _KillOnSecondTask(distributed.WorkerPlugin):
         threading.Timer(0.02, os.kill, (os.getpid(), signal.SIGKILL)).start()
 
 
-def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
+def backfill_killing_a_worker(tmp_path, src, dst, **options):
+    """A backfill on a 2-worker LocalCluster (reached by address, as `volsweep backfill
+    --scheduler ADDRESS` does) whose worker is killed as it starts its second task;
+    checks that a worker really died and returns the result."""
     import cloudpickle
 
     cloudpickle.register_pickle_by_value(sys.modules[__name__])
-    src, dst = tmp_path / "src", tmp_path / "dst"
-    paths = _history(src)
     marker = str(tmp_path / "killed")
     env = bf.worker_environ()
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
@@ -178,12 +179,17 @@ def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
             distributed.Client(cluster) as client:
         client.register_plugin(_KillOnSecondTask(marker))
         before = set(client.run(os.getpid).values())
-        # by address, as `volsweep backfill --scheduler ADDRESS` does
-        res = bf.backfill(src, dst, scheduler=cluster.scheduler_address, batch_rows=1000,
-                          **OPTS)
+        res = bf.backfill(src, dst, scheduler=cluster.scheduler_address, **options)
         after = set(client.run(os.getpid).values())
     killed = int(open(marker).read())
     assert killed in before and killed not in after          # a worker really died
+    return res
+
+
+def test_worker_killed_mid_run_loses_and_duplicates_nothing(tmp_path):
+    src, dst = tmp_path / "src", tmp_path / "dst"
+    paths = _history(src)
+    res = backfill_killing_a_worker(tmp_path, src, dst, batch_rows=1000, **OPTS)
     # a partition the dead worker had committed before its result reached the scheduler
     # is found complete by the rescheduled task and skipped, not written twice
     assert res.written + res.skipped == len(DATES) and res.skipped <= 2

@@ -146,8 +146,10 @@ def _public_functions() -> dict:
 def test_public_functions_are_the_expected_ones():
     # guards the checks below against an empty or shrunken list
     assert set(_public_functions()) == {"price", "implied_vol", "greeks", "sweep",
-                                        "prepare", "warmup", "backfill", "fit_smiles",
-                                        "smile_vols"}
+                                        "prepare", "warmup", "backfill",
+                                        "position_greeks", "scenarios", "fit_smiles",
+                                        "smile_vols", "implied_forwards", "model_free_variance",
+                                        "constant_maturity_variance", "term_history"}
 
 
 def test_api_reference_headings_match_signatures():
