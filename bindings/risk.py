@@ -183,8 +183,9 @@ def group_ids(keys: list, n: int):
 
 
 def _key_columns(by, key_arrays, rows_idx) -> dict:
-    return {name: arr.take(pa.array(rows_idx, pa.int64())) for name, arr in
-            zip(by, key_arrays)}
+    from .chain_plan import take_rows
+
+    return {name: take_rows(arr, rows_idx) for name, arr in zip(by, key_arrays)}
 
 
 def _chunked(parts, field_type) -> pa.ChunkedArray:
