@@ -191,13 +191,19 @@ def _sort_key(key):
     return tuple((2, 0) if x is None else (1, 0) if x == ("nan",) else (0, x) for x in key)
 
 
-def check_groups(inp, out, by, order, repeat=1):
+def check_groups(inp, out, by, order, repeat=1, nan_as_null=False):
     """Every distinct key of ``inp`` exactly once (``repeat`` consecutive rows each) in
-    ``out``, in ``order`` ("sorted" or "first")."""
+    ``out``, in ``order`` ("sorted" or "first").  ``nan_as_null``: the output shows a NaN
+    key as null (the chain results' ``expiry_years`` is the group's time, null without
+    one)."""
     want = list(dict.fromkeys(_keys(inp, by)))
     if order == "sorted":
         want.sort(key=_sort_key)
     got = _keys(out, by)
+    if nan_as_null:
+        def shown(k):
+            return tuple(None if x == ("nan",) or x in (np.inf, -np.inf) else x for x in k)
+        want, got = [shown(k) for k in want], [shown(k) for k in got]
     assert got == [k for k in want for _ in range(repeat)]
 
 
@@ -231,7 +237,7 @@ CHAIN_VALUES = ["forward", "discount", "parity_residual"]
 
 
 def check_forwards(inp, out, by=BY):
-    check_groups(inp, out, by, "sorted")
+    check_groups(inp, out, by, "sorted", nan_as_null=True)
     status = check_status(out, "status", kchains.NAMES)
     ok = status == "ok"
     check_values(out, CHAIN_VALUES + (["implied_yield"] if "implied_yield" in
@@ -251,7 +257,7 @@ def check_attached(inp, out):
 
 
 def check_variance(inp, out, by=BY):
-    check_groups(inp, out, by, "sorted")
+    check_groups(inp, out, by, "sorted", nan_as_null=True)
     status = check_status(out, "status", kchains.NAMES)
     ok = status == "ok"
     check_values(out, ["forward", "discount", "variance"], ok)
@@ -389,7 +395,16 @@ OPERATIONS = {
                 lambda i, o: check_per_row(i.drop_columns(["forward", "status"]), o)),
     "scenarios": (grid, check_scenarios),
 }
-SORTED = ("forwards", "forwards_premium", "variance", "variance_given", "smiles")
+# sorted outputs: row order changes no bit, as long as no two rows tie in the sort (the
+# same strike quoted twice: see the xfail tests below)
+SORTED = {"forwards": ("strike", "is_call"), "forwards_premium": ("strike", "is_call"),
+          "variance": ("strike", "is_call"), "variance_given": ("strike", "is_call"),
+          "smiles": ("strike",)}
+
+
+def _has_ties(t, cols):
+    keys = _keys(t, BY + cols)
+    return len(set(keys)) < len(keys)
 
 
 @pytest.mark.parametrize("op", list(OPERATIONS))
@@ -405,7 +420,7 @@ def test_junk_gives_statuses_every_group_once_and_leaves_the_input(op, data):
     # chunk layout changes no bit (all operations)
     whole = fn(t.combine_chunks())
     assert same_table(out.combine_chunks(), whole.combine_chunks())
-    if op in SORTED:   # sorted output: row order changes no bit either
+    if op in SORTED and not _has_ties(t, SORTED[op]):  # row order changes no bit either
         perm = np.random.default_rng(data.draw(st.integers(0, 2 ** 16))).permutation(
             t.num_rows)
         shuffled = fn(_take(t, perm))
@@ -455,8 +470,9 @@ def test_constant_maturity_of_junk_variances(data):
     assert same_table(t, before)
     check_cm(t, out, ("underlying",), len(days))
     perm = rng.permutation(n)
-    for other in (_take(t, perm),
-                  pa.Table.from_batches(t.to_batches(max_chunksize=7), schema=t.schema)):
+    ties = _has_ties(t.select(["underlying", "expiry_years"]), ())
+    for other in ([] if ties else [_take(t, perm)]) + [
+                  pa.Table.from_batches(t.to_batches(max_chunksize=7), schema=t.schema)]:
         again = volsweep.constant_maturity_variance(other, days=days,
                                                     extrapolate=extrapolate)
         assert same_table(again, out)
