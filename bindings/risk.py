@@ -151,7 +151,11 @@ def position_status(status: np.ndarray, q: np.ndarray, m: np.ndarray) -> np.ndar
 def _plain_keys(arr) -> pa.Array:
     if isinstance(arr, pa.ChunkedArray):
         arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    from .chain_plan import _rankable
+
     while pa.types.is_dictionary(arr.type) or pa.types.is_run_end_encoded(arr.type):
+        if pa.types.is_dictionary(arr.type):   # (decoding lacks view values, as polars')
+            arr = pa.DictionaryArray.from_arrays(arr.indices, _rankable(arr.dictionary))
         arr = (arr.dictionary_decode() if pa.types.is_dictionary(arr.type)
                else pc.run_end_decode(arr))
     return arr

@@ -349,12 +349,19 @@ def check_scenarios(inp, out, by=("underlying",)):
 
 # ------------------------------------------------------------------ the operations
 
+def _without(t, names):
+    """``t`` less the columns ``names`` (already done for a reader, a frame)."""
+    if isinstance(t, pa.Table):
+        return t.drop_columns([n for n in names if n in t.column_names])
+    return t
+
+
 def forwards(t, **kw):
     return volsweep.implied_forwards(t, by=BY, **kw)
 
 
 def attached(t):
-    return volsweep.implied_forwards(t.drop_columns(["forward"]), by=BY, attach=True)
+    return volsweep.implied_forwards(_without(t, ["forward"]), by=BY, attach=True)
 
 
 def variance(t):
@@ -371,15 +378,15 @@ def smiles(t):
 
 
 def positions(t):
-    return volsweep.position_greeks(t.drop_columns(["forward"]), which=GREEKS)
+    return volsweep.position_greeks(_without(t, ["forward"]), which=GREEKS)
 
 
 def per_row(t):
-    return volsweep.position_greeks(t.drop_columns(["forward", "status"]), which=GREEKS, per_row=True)
+    return volsweep.position_greeks(_without(t, ["forward", "status"]), which=GREEKS, per_row=True)
 
 
 def grid(t):
-    return volsweep.scenarios(t.drop_columns(["forward"]), spot_shocks=SPOT_SHOCKS,
+    return volsweep.scenarios(_without(t, ["forward"]), spot_shocks=SPOT_SHOCKS,
                               vol_shocks=VOL_SHOCKS)
 
 
@@ -476,3 +483,201 @@ def test_constant_maturity_of_junk_variances(data):
         again = volsweep.constant_maturity_variance(other, days=days,
                                                     extrapolate=extrapolate)
         assert same_table(again, out)
+
+
+# ------------------------------------------------------------------ targeted cases
+
+def _clean(groups=6, strikes=9, duplicates=0, seed=5):
+    return to_table(book(seed, groups=groups, strikes=strikes, duplicates=duplicates))
+
+
+@pytest.mark.parametrize("op", ["forwards", "variance", "smiles"])
+@pytest.mark.xfail(strict=True, reason="known: at a strike quoted twice the first row in "
+                   "input order is used (kernel/chains.py _pairs, the smile sort's ties), "
+                   "so shuffling such rows changes the result; not fixed here")
+def test_duplicate_strikes_make_the_result_depend_on_row_order(op):
+    fn, _ = OPERATIONS[op]
+    t = _clean(groups=3, strikes=6, duplicates=6, seed=0)
+    want = fn(t)
+    for seed in range(8):
+        perm = np.random.default_rng(seed).permutation(t.num_rows)
+        assert same_table(fn(_take(t, perm)), want)
+
+
+@pytest.mark.parametrize("op", list(OPERATIONS))
+def test_duplicate_strikes_still_give_every_group_once(op):
+    fn, check = OPERATIONS[op]
+    t = _clean(groups=5, strikes=6, duplicates=12, seed=1)
+    check(t, fn(t))
+
+
+@pytest.mark.parametrize("op", list(OPERATIONS))
+def test_empty_one_row_one_group_and_a_group_per_row(op):
+    fn, check = OPERATIONS[op]
+    t = _clean(groups=4, strikes=5)
+    empty = t.slice(0, 0)
+    out = fn(empty)
+    assert out.num_rows == 0
+    check(empty, out)
+    for one in (t.slice(0, 1), t.slice(7, 1)):
+        check(one, fn(one))
+    same = t.set_column(0, "underlying", pa.array(["KAQU"] * t.num_rows))
+    same = same.set_column(same.column_names.index("expiry_years"), "expiry_years",
+                           pa.array([0.5] * t.num_rows))
+    check(same, fn(same))
+    own = t.set_column(0, "underlying", pa.array([f"Z{i:04d}" for i in range(t.num_rows)]))
+    out = fn(own)
+    check(own, out)
+
+
+def test_empty_group_keys_and_null_keys_are_groups_of_their_own():
+    t = _clean(groups=4, strikes=5)
+    names = t.column("underlying").to_pylist()
+    names = [None if i % 3 == 0 else "" if i % 3 == 1 else x for i, x in enumerate(names)]
+    t = t.set_column(0, "underlying", pa.array(names))
+    for op, (fn, check) in OPERATIONS.items():
+        check(t, fn(t))
+    out = forwards(t)
+    assert out.column("underlying").to_pylist()[-1] is None      # nulls last
+    pos = positions(t)
+    assert pos.column("underlying").to_pylist()[0] is None       # first appearance
+
+
+@pytest.mark.parametrize("key_type", [pa.large_string(), pa.string_view(),
+                                      pa.dictionary(pa.int8(), pa.string()),
+                                      pa.dictionary(pa.uint32(), pa.large_string())])
+@pytest.mark.parametrize("op", list(OPERATIONS))
+def test_key_encodings_give_the_plain_string_result(op, key_type):
+    fn, _ = OPERATIONS[op]
+    t = _clean(groups=5, strikes=6)
+    want = fn(t)
+    got = fn(t.set_column(0, "underlying", t.column("underlying").cast(key_type)))
+    assert got.schema.field("underlying").type == key_type
+    assert _plain(got.column("underlying")).to_pylist() == \
+        want.column("underlying").to_pylist()
+    rest = [c for c in want.column_names if c != "underlying"]
+    assert same_table(got.select(rest), want.select(rest))
+
+
+def _retype(t, name, typ, values=None):
+    return t.set_column(t.column_names.index(name), name,
+                        pa.array(values if values is not None else
+                                 t.column(name).to_pylist(), typ))
+
+
+@pytest.mark.parametrize("op", list(OPERATIONS))
+def test_float16_integer_and_decimal_inputs_read_as_their_values(op):
+    """float16 and integers widen exactly, decimals as Python's float(Decimal) (the README's
+    input-type rules): the same bits as the float64 table of those values."""
+    fn, _ = OPERATIONS[op]
+    t = _clean(groups=5, strikes=6)
+    strikes = [decimal.Decimal(f"{x:.2f}") for x in t.column("strike").to_pylist()]
+    plain = _retype(t, "strike", pa.float64(), [float(d) for d in strikes])
+    plain = _retype(plain, "quantity", pa.float64(),
+                    [float(int(x)) for x in t.column("quantity").to_pylist()])
+    mult16 = np.array(t.column("multiplier").to_pylist(), np.float16)
+    plain = _retype(plain, "multiplier", pa.float64(), mult16.astype(np.float64))
+    odd = _retype(t, "strike", pa.decimal128(12, 2), strikes)
+    odd = _retype(odd, "quantity", pa.int32(),
+                  [int(x) for x in t.column("quantity").to_pylist()])
+    odd = _retype(odd, "multiplier", pa.float16(), mult16)
+    want, got = fn(plain), fn(odd)
+    rest = [c for c in want.column_names if c not in ("strike", "quantity", "multiplier")]
+    assert same_table(got.select(rest), want.select(rest))
+
+
+@pytest.mark.parametrize("op", list(OPERATIONS))
+def test_reader_pandas_and_polars_inputs_give_the_table_result(op):
+    fn, _ = OPERATIONS[op]
+    t = _clean(groups=5, strikes=6).drop_columns(["status"])
+    if op in ("attach", "positions", "per_row", "scenarios"):
+        t = t.drop_columns(["forward"])
+    want = fn(t)
+    reader = pa.RecordBatchReader.from_batches(t.schema, t.to_batches(max_chunksize=11))
+    assert same_table(fn(reader), want)
+    pd = pytest.importorskip("pandas")
+    frame = t.to_pandas()
+    frame["underlying"] = frame["underlying"].astype("category")
+    snap = frame.copy(deep=True)
+    got = fn(frame)
+    pd.testing.assert_frame_equal(frame, snap)                    # not written to
+    rest = [c for c in want.column_names if c != "underlying"]
+    assert got.column("underlying").to_pylist() == want.column("underlying").to_pylist()
+    assert same_table(got.select(rest), want.select(rest)) or op in ("attach", "per_row")
+    pl = pytest.importorskip("polars")
+    lf = pl.from_arrow(t).with_columns(pl.col("underlying").cast(pl.Categorical))
+    got = fn(lf)
+    assert got.column("underlying").to_pylist() == want.column("underlying").to_pylist()
+    rest = [c for c in rest if c in got.column_names]
+    assert same_table(got.select(rest), want.select(rest)) or op in ("attach", "per_row")
+
+
+def test_numpy_dict_input_is_not_written_to():
+    t = _clean(groups=4, strikes=5).drop_columns(["status"])
+    d = {c: (np.array(t.column(c).to_pylist(), object) if c == "underlying"
+             else t.column(c).to_numpy(zero_copy_only=False).copy()) for c in t.column_names}
+    d["strike"][3] = np.nan
+    keep = {c: v.copy() for c, v in d.items()}
+    for fn, check in OPERATIONS.values():
+        fn_in = {c: v for c, v in d.items()}
+        try:
+            fn(pa.table(fn_in))
+        finally:
+            for c in d:
+                assert np.array_equal(d[c], keep[c], equal_nan=d[c].dtype != object), c
+
+
+# ------------------------------------------------------------------ term_history
+
+def _write_history(root, days_cols):
+    for day, t in days_cols.items():
+        d = root / f"date={day}"
+        d.mkdir(parents=True)
+        pq.write_table(t, d / "part-0.parquet")
+
+
+def _cm_table(names, T, V, status):
+    return pa.table({"underlying": pa.array(names, pa.string()),
+                     "expiry_years": pa.array(T, pa.float64()),
+                     "variance": pa.array(V, pa.float64()),
+                     "status": pa.array(status, pa.string()).dictionary_encode()})
+
+
+def _smile_table(names, T, atm, status):
+    return pa.table({"underlying": pa.array(names, pa.string()),
+                     "expiry_years": pa.array(T, pa.float64()),
+                     "atm_vol": pa.array(atm, pa.float64()),
+                     "status": pa.array(status, pa.string()).dictionary_encode()})
+
+
+def test_term_history_of_junk_partitions_keeps_every_group_once(tmp_path):
+    nan, inf = np.nan, np.inf
+    var = {"2031-03-13": _cm_table(["ZOXI", "ZOXI", None, "", "KAQU"],
+                                   [0.1, 0.5, 0.2, nan, -1.0], [0.04, inf, 0.05, 0.03, 0.02],
+                                   ["ok", "ok", "ok", None, "ok"]),
+           "2031-03-14": _cm_table(["ZOXI", None, None], [0.1, 0.3, 1e308],
+                                   [0.04, 5e-324, 0.05], ["ok", "ok", "too_few_pairs"])}
+    sm = {"2031-03-13": _smile_table(["ZOXI", None, "QOXA"], [0.1, 0.2, 0.5],
+                                     [0.2, nan, 0.3], ["ok", "ok", "ok"]),
+          "2031-03-14": _smile_table(["ZOXI", None], [0.1, 0.3], [0.2, -0.25],
+                                     ["ok", "no_quotes"])}
+    _write_history(tmp_path / "v", var)
+    _write_history(tmp_path / "s", sm)
+    days = [7, 30, 400]
+    out = volsweep.term_history(tmp_path / "v", tmp_path / "s", days=days)
+    keys = list(zip(out.column("date").cast(pa.string()).to_pylist(),
+                    _plain(out.column("underlying")).to_pylist()))
+    want = set()
+    for day, t in (*var.items(), *sm.items()):
+        want |= {(day, u) for u in t.column("underlying").to_pylist()}
+    want = sorted(want, key=lambda k: (k[0], k[1] is None, k[1] or ""))
+    assert keys == [k for k in want for _ in days]
+    assert out.column("horizon_days").to_pylist() == days * len(want)
+    for vol, status in (("model_free_vol", "model_free_status"), ("atm_vol", "atm_status")):
+        s = out.column(status).combine_chunks()
+        words = np.array(_plain(s).to_pylist(), object)
+        assert set(words) <= set(kchains.NAMES) | {None}
+        v = out.column(vol).combine_chunks()
+        valid = v.is_valid().to_numpy(zero_copy_only=False)
+        assert np.isfinite(v.fill_null(0.0).to_numpy()[valid]).all()
+        assert not (valid & ~np.isin(words, ["ok", "extrapolated"])).any()
