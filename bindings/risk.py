@@ -158,6 +158,8 @@ def _plain_keys(arr) -> pa.Array:
             arr = pa.DictionaryArray.from_arrays(arr.indices, _rankable(arr.dictionary))
         arr = (arr.dictionary_decode() if pa.types.is_dictionary(arr.type)
                else pc.run_end_decode(arr))
+    if pa.types.is_floating(arr.type):   # -0.0 + 0.0 is +0.0: one key, as -0.0 == 0.0
+        arr = pc.add(arr.cast(pa.float64()), 0.0)
     return arr
 
 

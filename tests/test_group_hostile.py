@@ -680,3 +680,15 @@ def test_term_history_of_junk_partitions_keeps_every_group_once(tmp_path):
         valid = v.is_valid().to_numpy(zero_copy_only=False)
         assert np.isfinite(v.fill_null(0.0).to_numpy()[valid]).all()
         assert not (valid & ~np.isin(words, ["ok", "extrapolated"])).any()
+
+
+def test_float_keys_zero_signs_and_nans_are_one_key_each():
+    # -0.0 == 0.0 (IEEE 754): one group; every NaN one group; null its own
+    t = _clean(groups=1, strikes=3)
+    n = t.num_rows
+    k = pa.array(([0.0, -0.0, np.nan, None, 1.0] * n)[:n], pa.float64())
+    t = t.set_column(0, "underlying", k)
+    check_forwards(t, forwards(t, quotes="premium"))
+    check_variance(t, variance(t))
+    check_positions(t, positions(t))
+    check_scenarios(t, grid(t))
