@@ -410,7 +410,6 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
 def _smiles_table(table, by, time_key, first_rows, out) -> pa.Table:
     st = out["status"]
     ok = st == _svi.OK
-    take = pa.array(first_rows, pa.int64())
     cols, fields = [], []
     for b in by:
         col = take_rows(table.column(b), first_rows)
