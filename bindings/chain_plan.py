@@ -201,8 +201,7 @@ class Chain:
     def key_table(self) -> dict:
         """The by columns' values of each group (from one of its rows)."""
         first = self._input_rows(self.order[self.starts[:-1]])
-        return {name: col.take(pa.array(first, pa.int64()))
-                for name, col in self.keys}
+        return {name: take_rows(col, first) for name, col in self.keys}
 
     def row_group(self) -> np.ndarray:
         """The group of every row, in input order."""
@@ -289,9 +288,29 @@ def read_chain(plan: ChainPlan, batches, schema, *, keep_batches=False, progress
 
 # ------------------------------------------------------------------ grouping
 
+def _rankable(values: pa.Array) -> pa.Array:
+    """``values`` in a type ``pc.rank`` sorts: the view types (``string_view``,
+    ``binary_view``) as their large counterparts, same values."""
+    if pa.types.is_string_view(values.type):
+        return values.cast(pa.large_string())
+    if pa.types.is_binary_view(values.type):
+        return values.cast(pa.large_binary())
+    return values
+
+
+def take_rows(col, rows) -> pa.ChunkedArray:
+    """``col.take(rows)``, also for the view types, which pyarrow's take lacks (taken
+    through their large counterparts, same values, same type out)."""
+    idx = pa.array(rows, pa.int64())
+    t = col.type
+    if pa.types.is_string_view(t) or pa.types.is_binary_view(t):
+        return _rankable(col).take(idx).cast(t)
+    return col.take(idx)
+
+
 def _ranked(values: pa.Array, indices: np.ndarray, null_rows: np.ndarray | None):
     """int64 order codes of dictionary ``indices`` into ``values`` (ascending; nulls last)."""
-    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(
+    rank = pc.rank(_rankable(values), sort_keys="ascending", tiebreaker="dense").to_numpy(
         zero_copy_only=False).astype(np.int64)
     if np.array_equal(rank, np.arange(1, len(rank) + 1)):
         codes = indices.astype(np.int64)       # a sorted dictionary: the indices order
@@ -380,7 +399,7 @@ def _dense_key(col: pa.ChunkedArray):
     col = col.unify_dictionaries() if col.num_chunks > 1 else col
     values = col.chunk(0).dictionary if col.num_chunks else pa.array([], col.type.value_type)
     size = len(values) + 1                       # + the null code
-    rank = pc.rank(values, sort_keys="ascending", tiebreaker="dense").to_numpy(
+    rank = pc.rank(_rankable(values), sort_keys="ascending", tiebreaker="dense").to_numpy(
         zero_copy_only=False).astype(np.int64) - 1
     indices = pa.chunked_array([ch.indices for ch in col.chunks])
     if col.null_count:

@@ -78,9 +78,25 @@ def term_history(variance, smiles=None, days=(30,), by=("underlying",)) -> pa.Ta
     if out.select(group).equals(at.select(group)):
         return out.append_column("atm_vol", at["atm_vol"]).append_column(
             "atm_status", at["atm_status"])
-    # a group present on one side only keeps its row with nulls on the other: a join, then
-    # the same order again (dictionary keys sorted by their values)
-    joined = out.join(at, keys=group, join_type="full outer")
+    # a group present on one side only keeps its row with nulls on the other: the union
+    # of the groups (a null key is a key: a hash join would never match it, and would
+    # give such a group twice), then the same order again (dictionary keys sorted by
+    # their values)
+    from .risk import group_ids
+
+    both = pa.concat_tables([out.select(group), at.select(group)],
+                            promote_options="permissive")
+    gid, first = group_ids([both[c] for c in group], both.num_rows)
+    sides = []
+    for side, ids in ((out, gid[:out.num_rows]), (at, gid[out.num_rows:])):
+        pick = np.full(len(first), -1, np.int64)
+        pick[ids] = np.arange(side.num_rows)
+        sides.append(pa.array(pick, pa.int64(), mask=pick < 0))
+    joined = both.take(pa.array(first, pa.int64()))
+    for c in ("model_free_vol", "model_free_status"):
+        joined = joined.append_column(c, out[c].take(sides[0]))
+    for c in ("atm_vol", "atm_status"):
+        joined = joined.append_column(c, at[c].take(sides[1]))
     plain = {c: joined[c].cast(joined[c].type.value_type)
              if pa.types.is_dictionary(joined[c].type) else joined[c] for c in group}
     order = pc.sort_indices(pa.table(plain), sort_keys=[(c, "ascending") for c in group],

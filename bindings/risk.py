@@ -151,9 +151,15 @@ def position_status(status: np.ndarray, q: np.ndarray, m: np.ndarray) -> np.ndar
 def _plain_keys(arr) -> pa.Array:
     if isinstance(arr, pa.ChunkedArray):
         arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    from .chain_plan import _rankable
+
     while pa.types.is_dictionary(arr.type) or pa.types.is_run_end_encoded(arr.type):
+        if pa.types.is_dictionary(arr.type):   # (decoding lacks view values, as polars')
+            arr = pa.DictionaryArray.from_arrays(arr.indices, _rankable(arr.dictionary))
         arr = (arr.dictionary_decode() if pa.types.is_dictionary(arr.type)
                else pc.run_end_decode(arr))
+    if pa.types.is_floating(arr.type):   # -0.0 + 0.0 is +0.0: one key, as -0.0 == 0.0
+        arr = pc.add(arr.cast(pa.float64()), 0.0)
     return arr
 
 
@@ -183,8 +189,9 @@ def group_ids(keys: list, n: int):
 
 
 def _key_columns(by, key_arrays, rows_idx) -> dict:
-    return {name: arr.take(pa.array(rows_idx, pa.int64())) for name, arr in
-            zip(by, key_arrays)}
+    from .chain_plan import take_rows
+
+    return {name: take_rows(arr, rows_idx) for name, arr in zip(by, key_arrays)}
 
 
 def _chunked(parts, field_type) -> pa.ChunkedArray:

@@ -25,6 +25,7 @@ from volsweep.kernel.registry import DEFAULT_MODEL
 from ._columns import (OptionError, _is_string_view, _scalar_time, _to_float64, _to_seconds,
                        _years_between)
 from ._input import as_batches
+from .chain_plan import take_rows
 from ._output import new_array
 from .loader import launch_guard
 
@@ -277,7 +278,7 @@ def _slices(key_table, keys, n_surface_keys, skey, n):
     for k in keys:
         change |= _changes(key_table.column(k))
     starts = np.r_[0, np.flatnonzero(change) + 1].astype(np.int64)
-    heads = key_table.take(pa.array(starts))
+    heads = pa.table({k: take_rows(key_table.column(k), starts) for k in keys})
     m = len(starts)
     s_codes = _combine([_dense_codes(heads.column(k)) for k in keys[:n_surface_keys]], m)
     codes = _combine([s_codes, _dense_codes(heads.column(keys[-1]))], m)
@@ -409,10 +410,9 @@ def fit_smiles(data, model: str = DEFAULT_MODEL, by=("underlying", "expiry"),
 def _smiles_table(table, by, time_key, first_rows, out) -> pa.Table:
     st = out["status"]
     ok = st == _svi.OK
-    take = pa.array(first_rows, pa.int64())
     cols, fields = [], []
     for b in by:
-        col = table.column(b).take(take)
+        col = take_rows(table.column(b), first_rows)
         cols.append(col)
         fields.append(table.schema.field(b))
     have_values = np.isfinite(out["forward"])
@@ -507,7 +507,10 @@ def smile_vols(smiles, data, columns: dict | None = None, *, as_of=None) -> pa.T
     T = reader.years(as_of)
 
     # the fitted slices, grouped by surface, each surface's slices by time
-    fitted = smiles.filter(pc.equal(smiles.column("status"), "ok"))
+    ok_rows = np.flatnonzero(pc.fill_null(pc.equal(smiles.column("status"), "ok"), False)
+                             .to_numpy(zero_copy_only=False))
+    fitted = pa.Table.from_arrays([take_rows(c, ok_rows) for c in smiles.columns],
+                                  schema=smiles.schema)   # (filter lacks string_view)
     fk = _key_rows(fitted, keys)
     nf = fitted.num_rows
     slice_keys = [tuple(v[idx[r]] for v, idx in fk) for r in range(nf)] if keys \
