@@ -130,12 +130,12 @@ _REL_TIME = 1e-12      # rows of a group agree on T, D, F within this relative d
 GROUP_BLOCK = 16       # groups per parallel task
 
 _njit = numba.njit(error_model="numpy", fastmath=set(FASTMATH), cache=True, nogil=True)
-# The weighted sums of the reweighting steps may be added in any order (``reassoc``), so
-# that LLVM can vectorise them: sums of a few hundred terms move by a few ulps, far below
-# the quotes' noise and the 1e-9 the exact-price tests ask.  No ``nnan``/``ninf``: the
-# NaN tests that decide the statuses must stay.
-_njit_sums = numba.njit(error_model="numpy", fastmath=set(FASTMATH) | {"reassoc", "nsz"},
-                        cache=True, nogil=True)
+# The weighted sums of the reweighting steps are added in source order (no ``reassoc``):
+# with it, the order LLVM chose depended on the compile (a cold compile in the test
+# process and the cached code in a Dask worker gave forwards a few ulps apart), and the
+# backfill promises the single-process bits.  No ``nnan``/``ninf``: the NaN tests that
+# decide the statuses must stay.
+_njit_sums = numba.njit(error_model="numpy", fastmath=set(FASTMATH), cache=True, nogil=True)
 
 
 # ------------------------------------------------------------------ sorting helpers
