@@ -109,10 +109,11 @@ LEE_SLOPE = 2.0        # largest wing slope of total variance (Lee's moment form
 _N_PARAMS = 5
 
 _FLAGS = frozenset({"contract"})
-# The sums over the quotes of one slice are reductions: LLVM vectorises a reduction only
-# when it may reassociate the additions ("reassoc").  The order of the additions is fixed
-# by the compiled code, so results stay deterministic; only those sums use it.
-_SUM_FLAGS = frozenset({"contract", "reassoc"})
+# The sums over the quotes of one slice are added in source order (no "reassoc"): with it
+# the order is fixed by the compiled code, and the compiled code depended on the compile
+# (the chain kernels' forwards differed by a few ulps between a cold compile in one process
+# and another process's cached code), while the backfill promises the single-process bits.
+_SUM_FLAGS = frozenset({"contract"})
 
 
 def _njit(fn):
