@@ -206,6 +206,15 @@ def _counts(gid, n_groups, left_out) -> tuple:
 
 # ------------------------------------------------------------------ position Greeks
 
+def _grouped(keys: dict, schema: pa.Schema, by, st: np.ndarray):
+    """(key arrays, group id per row, first row per group, rows and rows left out per
+    group) of the rows whose statuses are ``st``."""
+    key_arrays = [_chunked(keys[c], schema.field(c).type) for c in by]
+    gid, first = group_ids(key_arrays, len(st))
+    rows, left_out = _counts(gid, len(first), st != _status.OK)
+    return key_arrays, gid, first, rows, left_out
+
+
 def _greek_request(which):
     if which is None or isinstance(which, str):
         return which
@@ -291,11 +300,8 @@ def position_greeks(data, by=("underlying",), which=None, model: str = DEFAULT_M
         return pa.Table.from_batches(out_batches, schema=out_schema)
     st = np.concatenate(st_parts) if st_parts else np.zeros(0, np.int8)
     n = len(st)
-    key_arrays = [_chunked(keys[c], schema.field(c).type) for c in by]
-    gid, first = group_ids(key_arrays, n)
+    key_arrays, gid, first, rows, left_out = _grouped(keys, schema, by, st)
     n_groups = len(first)
-    ok = st == _status.OK
-    rows, left_out = _counts(gid, n_groups, ~ok)
     out = _key_columns(by, key_arrays, first)
     out["rows"] = pa.array(rows, pa.int64())
     out["rows_left_out"] = pa.array(left_out, pa.int64())
@@ -398,11 +404,8 @@ def run_scenarios(schema, batches, *, model, by, spot_shocks, vol_shocks, days, 
               for k, v in parts.items()}
     st = arrays["st"]
     n = len(st)
-    key_arrays = [_chunked(keys[c], schema.field(c).type) for c in by]
-    gid, first = group_ids(key_arrays, n)
+    key_arrays, gid, first, rows, left_out = _grouped(keys, schema, by, st)
     n_groups = len(first)
-    ok = st == _status.OK
-    rows, left_out = _counts(gid, n_groups, ~ok)
     order = None
     if n and np.any(gid[1:] < gid[:-1]):
         order = np.argsort(gid, kind="stable")
